@@ -1,0 +1,404 @@
+"""Paired image sets: discovery, labels and loading.
+
+A data set is a folder with ``clean/`` and ``cluttered/`` holding the same relative file
+names (one scene, two views), plus an optional ``labels.csv`` whose first column is the
+file name. Other columns are task labels (text columns are classes, numeric columns are
+regression targets); columns named ``factor_*`` or ``level`` describe the clutter and are
+used for breakdowns, not probes. A manifest CSV with explicit ``clean`` and ``cluttered``
+path columns is accepted in place of a folder.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+from PIL import Image, ImageOps
+
+from .errors import InvarianceError
+
+IMAGE_EXTENSIONS = frozenset({".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff", ".webp", ".gif"})
+LABELS_FILE = "labels.csv"
+_MAX_LISTED = 10  # names shown in an error before "and N more"
+
+
+@dataclass
+class LabelTable:
+    """Per-pair labels, rows in the order of the pair set.
+
+    Attributes
+    ----------
+    tasks : dict of str to ndarray
+        Task label columns: float64 arrays for numeric columns, arrays of ``str`` for classes.
+    task_kinds : dict of str to str
+        ``"regression"`` or ``"classification"`` for each task column.
+    factors : dict of str to ndarray
+        ``factor_*`` and ``level`` columns as arrays of ``str`` (values are groups).
+    """
+
+    tasks: dict[str, np.ndarray] = field(default_factory=dict)
+    task_kinds: dict[str, str] = field(default_factory=dict)
+    factors: dict[str, np.ndarray] = field(default_factory=dict)
+
+    def subset(self, indices) -> "LabelTable":
+        idx = np.asarray(indices, dtype=int)
+        return LabelTable(
+            tasks={k: v[idx] for k, v in self.tasks.items()},
+            task_kinds=dict(self.task_kinds),
+            factors={k: v[idx] for k, v in self.factors.items()},
+        )
+
+
+@dataclass
+class PairSet:
+    """Clean and cluttered image paths of the same scenes, row ``i`` of each is one scene."""
+
+    names: list[str]
+    clean: list[Path]
+    cluttered: list[Path]
+    root: Path | None = None
+    labels: LabelTable | None = None
+    skipped: list[str] = field(default_factory=list)
+    _hash: str | None = field(default=None, repr=False, compare=False)
+
+    def __post_init__(self):
+        if not (len(self.names) == len(self.clean) == len(self.cluttered)):
+            raise ValueError("names, clean and cluttered must have the same length")
+
+    def __len__(self) -> int:
+        return len(self.names)
+
+    @classmethod
+    def from_paths(cls, clean: Sequence, cluttered: Sequence, names: Sequence[str] | None = None):
+        """Build a pair set from two equally long lists of image paths (row i paired)."""
+        clean = [Path(p) for p in clean]
+        cluttered = [Path(p) for p in cluttered]
+        if len(clean) != len(cluttered):
+            raise InvarianceError(
+                f"{len(clean)} clean paths but {len(cluttered)} cluttered paths; give one of each per scene"
+            )
+        names = list(names) if names is not None else [p.name for p in clean]
+        return cls(names=names, clean=clean, cluttered=cluttered)
+
+    def subset(self, indices) -> "PairSet":
+        """The pairs at ``indices`` (both views of each scene travel together)."""
+        idx = [int(i) for i in indices]
+        return PairSet(
+            names=[self.names[i] for i in idx],
+            clean=[self.clean[i] for i in idx],
+            cluttered=[self.cluttered[i] for i in idx],
+            root=self.root,
+            labels=self.labels.subset(idx) if self.labels is not None else None,
+        )
+
+    def content_hash(self) -> str:
+        """SHA-256 over the names and the bytes of every image, in pair order."""
+        if self._hash is None:
+            digest = hashlib.sha256()
+            for name, a, b in zip(self.names, self.clean, self.cluttered):
+                digest.update(name.encode("utf-8") + b"\0")
+                for path in (a, b):
+                    digest.update(_file_digest(path))
+            self._hash = digest.hexdigest()
+        return self._hash
+
+    def describe(self) -> dict:
+        """JSON-able summary for the result file."""
+        info = {"path": str(self.root) if self.root else None, "pairs": len(self)}
+        if self.labels is not None:
+            info["tasks"] = dict(self.labels.task_kinds)
+            info["factors"] = sorted(self.labels.factors)
+        if self.skipped:
+            info["skipped_unpaired"] = len(self.skipped)
+        return info
+
+
+def _file_digest(path: Path) -> bytes:
+    try:
+        return hashlib.sha256(Path(path).read_bytes()).digest()
+    except OSError as exc:
+        raise InvarianceError(f"cannot read image {path}: {exc.strerror or exc}; check the file exists and is readable") from None
+
+
+def _listing(names: Sequence[str]) -> str:
+    shown = ", ".join(names[:_MAX_LISTED])
+    more = len(names) - _MAX_LISTED
+    return shown + (f" and {more} more" if more > 0 else "")
+
+
+def _image_names(folder: Path) -> list[str]:
+    return sorted(
+        p.relative_to(folder).as_posix()
+        for p in folder.rglob("*")
+        if p.is_file() and p.suffix.lower() in IMAGE_EXTENSIONS and not p.name.startswith(".")
+    )
+
+
+def discover_pairs(path, *, skip_unpaired: bool = False, labels: bool = True) -> PairSet:
+    """Find the paired images of a data set folder (or read a manifest CSV).
+
+    Parameters
+    ----------
+    path : str or Path
+        A folder with ``clean/`` and ``cluttered/`` (same relative names) and an optional
+        ``labels.csv``, or a manifest CSV with ``clean`` and ``cluttered`` columns.
+    skip_unpaired : bool
+        Drop images that have no partner instead of stopping with an error.
+    labels : bool
+        Read ``labels.csv`` when present.
+
+    Returns
+    -------
+    PairSet
+    """
+    path = Path(path)
+    if path.is_file() and path.suffix.lower() == ".csv":
+        return load_manifest(path)
+    if not path.exists():
+        raise InvarianceError(
+            f"data folder not found: {path}; pass a folder holding clean/ and cluttered/ "
+            "(make one with `invariance scenes OUT_DIR`)"
+        )
+    if not path.is_dir():
+        raise InvarianceError(f"{path} is not a folder or a manifest .csv; pass a folder holding clean/ and cluttered/")
+    clean_dir, cluttered_dir = path / "clean", path / "cluttered"
+    for sub in (clean_dir, cluttered_dir):
+        if not sub.is_dir():
+            raise InvarianceError(
+                f"{sub} is missing; a data folder holds clean/ and cluttered/ with matching file names"
+            )
+    clean_names, cluttered_names = _image_names(clean_dir), _image_names(cluttered_dir)
+    if not clean_names and not cluttered_names:
+        raise InvarianceError(
+            f"no images in {clean_dir} or {cluttered_dir}; add PNG or JPEG files with matching names to both"
+        )
+    names, unpaired = _match_names(clean_names, cluttered_names)
+    if unpaired and not skip_unpaired:
+        raise InvarianceError(
+            f"{len(unpaired)} images in {path} have no partner: {_listing(unpaired)}; "
+            "add the missing views or pass --skip-unpaired to go on without them"
+        )
+    if not names:
+        raise InvarianceError(f"no file name appears in both {clean_dir} and {cluttered_dir}; the two views of a scene must share a name")
+    pairs = PairSet(
+        names=names,
+        clean=[clean_dir / n for n in names],
+        cluttered=[cluttered_dir / n for n in names],
+        root=path,
+        skipped=unpaired,
+    )
+    labels_path = path / LABELS_FILE
+    if labels and labels_path.is_file():
+        pairs.labels = read_labels(labels_path, names)
+    return pairs
+
+
+def _match_names(clean_names, cluttered_names):
+    a, b = set(clean_names), set(cluttered_names)
+    paired = sorted(a & b)
+    unpaired = sorted(f"clean/{n}" for n in a - b) + sorted(f"cluttered/{n}" for n in b - a)
+    return paired, unpaired
+
+
+def load_manifest(path) -> PairSet:
+    """Read a manifest CSV with ``clean`` and ``cluttered`` columns (paths relative to the CSV).
+
+    An optional ``name`` column names the pair; any other columns are labels, as in
+    ``labels.csv``.
+    """
+    path = Path(path)
+    header, rows = _read_csv(path)
+    for col in ("clean", "cluttered"):
+        if col not in header:
+            raise InvarianceError(f"{path} has no '{col}' column; a manifest needs columns clean,cluttered (paths to each view)")
+    ci, ki = header.index("clean"), header.index("cluttered")
+    ni = header.index("name") if "name" in header else None
+    base = path.parent
+    clean, cluttered, names = [], [], []
+    for line_no, row in rows:
+        clean.append(_resolve(base, row[ci]))
+        cluttered.append(_resolve(base, row[ki]))
+        names.append(row[ni] if ni is not None else row[ci])
+    if not names:
+        raise InvarianceError(f"{path} lists no pairs; add one row per scene with its clean and cluttered paths")
+    missing = [str(p) for p in clean + cluttered if not p.is_file()]
+    if missing:
+        raise InvarianceError(f"{len(missing)} files named in {path} do not exist: {_listing(missing)}; fix the paths (relative to the manifest's folder)")
+    _refuse_duplicates(path, names)
+    label_cols = [i for i, h in enumerate(header) if i not in (ci, ki, ni)]
+    table = _label_table(path, [header[i] for i in label_cols], [(n, [r[i] for i in label_cols]) for n, r in rows])
+    pairs = PairSet(names=names, clean=clean, cluttered=cluttered, root=base, labels=table if label_cols else None)
+    return pairs
+
+
+def _resolve(base: Path, value: str) -> Path:
+    p = Path(value.strip())
+    return p if p.is_absolute() else base / p
+
+
+def _read_csv(path: Path) -> tuple[list[str], list[tuple[int, list[str]]]]:
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            reader = csv.reader(fh)
+            header = [h.strip() for h in next(reader, [])]
+            rows = [(reader.line_num, [c.strip() for c in row]) for row in reader if any(c.strip() for c in row)]
+    except UnicodeDecodeError:
+        raise InvarianceError(f"{path} is not UTF-8 text; save it as UTF-8 CSV") from None
+    except (OSError, csv.Error) as exc:
+        raise InvarianceError(f"cannot read {path}: {exc}; check it is a readable CSV file") from None
+    if not header:
+        raise InvarianceError(f"{path} is empty; it needs a header row (file,...) and one row per pair")
+    for line_no, row in rows:
+        if len(row) != len(header):
+            raise InvarianceError(
+                f"{path} line {line_no} has {len(row)} fields, the header has {len(header)}; fix that row"
+            )
+    return header, rows
+
+
+def _refuse_duplicates(path: Path, names: Sequence[str]) -> None:
+    seen, dups = set(), []
+    for n in names:
+        if n in seen:
+            dups.append(n)
+        seen.add(n)
+    if dups:
+        raise InvarianceError(f"{path} names {len(dups)} files twice: {_listing(sorted(set(dups)))}; keep one row per file")
+
+
+def read_labels(path, names: Sequence[str]) -> LabelTable:
+    """Read ``labels.csv`` and order its rows like ``names``.
+
+    The first column is the file name (relative, as under ``clean/``). Every pair needs
+    exactly one row; rows for files that are not pairs are ignored.
+    """
+    path = Path(path)
+    header, rows = _read_csv(path)
+    if len(header) < 2:
+        raise InvarianceError(f"{path} has no label columns; add columns after the file name (or delete the file)")
+    keys = [r[0] for _, r in rows]
+    _refuse_duplicates(path, keys)
+    by_name = {r[0]: (line_no, r[1:]) for line_no, r in rows}
+    missing = [n for n in names if n not in by_name]
+    if missing:
+        raise InvarianceError(
+            f"{path} has no row for {len(missing)} pairs: {_listing(missing)}; add a row per pair (first column the file name)"
+        )
+    ordered = [(n, by_name[n][1], by_name[n][0]) for n in names]
+    return _label_table(path, header[1:], [(n, vals) for n, vals, _ in ordered], [ln for *_, ln in ordered])
+
+
+def _is_factor(column: str) -> bool:
+    return column.startswith("factor_") or column == "level"
+
+
+def _label_table(path: Path, columns: Sequence[str], rows, line_numbers=None) -> LabelTable:
+    table = LabelTable()
+    for j, col in enumerate(columns):
+        values = [vals[j] for _, vals in rows]
+        lines = line_numbers or list(range(2, len(values) + 2))
+        if _is_factor(col):
+            table.factors[col] = np.array(values, dtype=object).astype(str)
+        elif _looks_numeric(values):
+            table.tasks[col] = _parse_numeric(path, col, values, lines)
+            table.task_kinds[col] = "regression"
+        else:
+            table.tasks[col] = np.array(values, dtype=object).astype(str)
+            table.task_kinds[col] = "classification"
+    return table
+
+
+def _to_float(value: str) -> float | None:
+    try:
+        out = float(value)
+    except ValueError:
+        return None
+    return out if np.isfinite(out) else None
+
+
+def _looks_numeric(values: Sequence[str]) -> bool:
+    """A column is numeric when most of its non-empty values are numbers (common practice).
+
+    Half or more is the rule: a column of numbers with a stray typo is a numeric column
+    with an error in it, reported as such, rather than a silently created class label.
+    """
+    filled = [v for v in values if v != ""]
+    if not filled:
+        return False
+    return sum(_to_float(v) is not None for v in filled) * 2 >= len(filled)
+
+
+def _parse_numeric(path: Path, col: str, values: Sequence[str], lines: Sequence[int]) -> np.ndarray:
+    out = np.empty(len(values), dtype=np.float64)
+    for i, (v, line_no) in enumerate(zip(values, lines)):
+        parsed = _to_float(v)
+        if parsed is None:
+            shown = repr(v) if v else "an empty value"
+            raise InvarianceError(
+                f"{path} line {line_no}, column '{col}': {shown} is not a finite number in a numeric column; fix the value"
+            )
+        out[i] = parsed
+    return out
+
+
+def load_rgb(path) -> Image.Image:
+    """Open an image of any PIL mode as 8-bit RGB, with its EXIF orientation applied.
+
+    Transparent pixels are composited over white (common practice for thumbnails and
+    scans); 16-bit and float greyscale are scaled to 0-255 rather than clipped. Images
+    above PIL's decompression-bomb limit (``Image.MAX_IMAGE_PIXELS``) are refused.
+    """
+    path = Path(path)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", Image.DecompressionBombWarning)
+            with Image.open(path) as im:
+                im.load()
+                im = ImageOps.exif_transpose(im)
+                return _to_rgb(im)
+    except (Image.DecompressionBombError, Image.DecompressionBombWarning):
+        raise InvarianceError(
+            f"{path} has more pixels than the safety limit ({Image.MAX_IMAGE_PIXELS:,}); "
+            "downscale it, it may be a decompression bomb"
+        ) from None
+    except FileNotFoundError:
+        raise InvarianceError(f"image not found: {path}; check the data folder") from None
+    except (OSError, SyntaxError, ValueError) as exc:
+        raise InvarianceError(f"cannot read image {path} ({exc}); the file is truncated or not an image, replace it") from None
+
+
+def _to_rgb(im: Image.Image) -> Image.Image:
+    if im.mode in ("I;16", "I;16B", "I;16L", "I;16N", "I", "F"):
+        arr = np.asarray(im, dtype=np.float64)
+        top = 65535.0 if im.mode.startswith("I;16") else max(float(arr.max()), 1.0)
+        arr = np.clip(arr / top * 255.0 + 0.5, 0, 255).astype(np.uint8)
+        return Image.fromarray(arr, mode="L").convert("RGB")
+    if im.mode == "P" and "transparency" in im.info:
+        im = im.convert("RGBA")
+    if im.mode in ("RGBA", "LA", "PA", "RGBa", "La"):
+        rgba = im.convert("RGBA")
+        white = Image.new("RGBA", rgba.size, (255, 255, 255, 255))
+        return Image.alpha_composite(white, rgba).convert("RGB")
+    return im.convert("RGB")
+
+
+def read_labels_in_order(path, n_rows: int) -> tuple[list[str], LabelTable]:
+    """Read a labels CSV whose rows follow the rows of a feature matrix (``--features``).
+
+    Returns the names in the first column and the label table in file order.
+    """
+    path = Path(path)
+    header, rows = _read_csv(path)
+    if len(rows) != n_rows:
+        raise InvarianceError(
+            f"{path} has {len(rows)} rows but the feature files have {n_rows}; give one labels row per feature row, in order"
+        )
+    names = [r[0] for _, r in rows]
+    _refuse_duplicates(path, names)
+    table = _label_table(path, header[1:], [(r[0], r[1:]) for _, r in rows], [ln for ln, _ in rows])
+    return names, table
