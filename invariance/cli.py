@@ -273,6 +273,211 @@ def layers(spec, weights, device):
         click.echo(node)
 
 
+def _read_encoders_toml(path):
+    """Encoders listed in a TOML file: [[encoder]] tables with spec, weights, layers, name."""
+    import tomllib
+
+    try:
+        with open(path, "rb") as fh:
+            data = tomllib.load(fh)
+    except OSError as exc:
+        raise InvarianceError(f"cannot read {path}: {exc.strerror}; check the --encoders path") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise InvarianceError(f"{path} is not valid TOML ({exc}); fix the file") from None
+    entries = data.get("encoder")
+    if not isinstance(entries, list) or not entries:
+        raise InvarianceError(f"{path} lists no [[encoder]] tables; add one per encoder with at least spec = \"...\"")
+    out = []
+    for i, entry in enumerate(entries, 1):
+        if not isinstance(entry, dict) or not isinstance(entry.get("spec"), str):
+            raise InvarianceError(f"{path}: encoder {i} has no spec; write spec = \"torchvision:resnet18\" (for example)")
+        unknown = set(entry) - {"spec", "weights", "layers", "name", "image_size"}
+        if unknown:
+            raise InvarianceError(f"{path}: encoder {i} has unknown keys {sorted(unknown)}; allowed: spec, weights, layers, name, image_size")
+        item = dict(entry)
+        if item.get("weights"):
+            item["weights"] = Path(path).parent / item["weights"]
+        out.append(item)
+    return out
+
+
+@cli.command()
+@click.argument("data", type=click.Path(path_type=Path))
+@click.option("--encoder", "specs", multiple=True, help=ENCODER_HELP + " Repeat for each encoder.")
+@click.option("--encoders", "encoders_toml", type=click.Path(dir_okay=False, path_type=Path),
+              help="TOML file with [[encoder]] tables (spec, weights, layers, name, image_size).")
+@click.option("--layer", "layers", multiple=True, help="Graph node to tap in every encoder given by --encoder.")
+@click.option("--json", "json_path", type=click.Path(dir_okay=False, path_type=Path), help="Write the comparison JSON here.")
+@click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path), help="Write the HTML report here.")
+@click.option("--permutations", type=click.IntRange(1, 1_000_000), default=1000, show_default=True)
+@click.option("--folds", type=click.IntRange(2, 50), default=5, show_default=True)
+@_run_options
+@_handle_errors
+def compare(data, specs, encoders_toml, layers, json_path, report_path, permutations, folds, seed, image_size, device,
+            batch_size, cache_dir, no_cache, skip_unpaired, quiet):
+    """Score several encoders on the same pairs, folds and permutations, and rank them.
+
+    Encoders that share a network reuse cached features. An encoder that fails midway is
+    shown in the report with its message; the others are still scored.
+    """
+    from . import pipeline
+    from ._io import atomic_write_json
+
+    entries = [{"spec": s, "layers": list(layers) or None} for s in specs]
+    if encoders_toml:
+        entries += _read_encoders_toml(encoders_toml)
+    if not entries:
+        raise click.UsageError("give at least one --encoder SPEC or --encoders FILE.toml")
+    _check_output_paths(json_path, report_path)
+    comparison = pipeline.compare_encoders(
+        data, entries, seed=seed, permutations=permutations, folds=folds, image_size=image_size, device=device,
+        cache_dir=_cache_dir(cache_dir, no_cache), batch_size=batch_size, skip_unpaired=skip_unpaired,
+        progress=not quiet, echo=_echo_err(quiet),
+    )
+    if json_path:
+        atomic_write_json(json_path, comparison)
+        click.echo(f"comparison JSON: {json_path}")
+    if report_path:
+        from .report.html import write_report
+
+        write_report(report_path, comparison["results"], failures=comparison["failures"], warnings=comparison["warnings"])
+        click.echo(f"report: {report_path}")
+    _print_ranking(comparison)
+
+
+def _print_ranking(comparison):
+    from .results import display_name, metric_value, rank_results
+
+    results = comparison["results"]
+    click.echo("rank  encoder  domain accuracy [95% CI]  relative drift  CKA")
+    for rank, i in enumerate(rank_results(results), 1):
+        m = results[i]["metrics"]
+        acc = metric_value(m, "domain_classifier", "accuracy")
+        ci = m.get("domain_classifier", {}).get("ci")
+        drift = metric_value(m, "paired_drift", "relative_drift")
+        cka = metric_value(m, "cka")
+        acc_s = f"{acc:.3f} [{ci[0]:.3f}, {ci[1]:.3f}]" if acc is not None and ci else "n/a"
+        click.echo(f"{rank:>4}  {display_name(results[i])}  {acc_s}  "
+                   f"{'n/a' if drift is None else f'{drift:.3f}'}  {'n/a' if cka is None else f'{cka:.3f}'}")
+    for failure in comparison.get("failures", []):
+        click.echo(f"failed: {failure['name']}: {failure['error']}")
+    for warning in comparison.get("warnings", []):
+        click.echo(f"warning: {warning}")
+    click.echo(f"note: {SAFETY_CAUTION}")
+
+
+@cli.command()
+@click.argument("results", nargs=-1, required=True, type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="The HTML file to write (self-contained, opens offline).")
+@click.option("--title", default=None, help="Report title.")
+@_handle_errors
+def report(results, out_path, title):
+    """Render the HTML report from saved result or comparison JSON files (from any machine)."""
+    from .report.html import write_report
+    from .results import load_as_comparison
+
+    _check_output_paths(out_path)
+    comparison = load_as_comparison(results)
+    write_report(out_path, comparison["results"], failures=comparison["failures"],
+                 warnings=comparison["warnings"], title=title)
+    click.echo(f"report: {out_path}")
+
+
+@cli.command()
+@click.argument("data", type=click.Path(path_type=Path))
+@click.option("--encoder", "spec", required=True, help=ENCODER_HELP)
+@click.option("--weights", type=click.Path(dir_okay=False, path_type=Path), help="Local state_dict for a torchvision: spec.")
+@click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="Checkpoint to write (load it later as checkpoint:FILE).")
+@click.option("--steps", type=click.IntRange(1, 1_000_000), default=300, show_default=True, help="Training steps at most.")
+@click.option("--minutes", type=click.FloatRange(0, min_open=True), default=None, help="Wall-clock limit.")
+@click.option("--train-from", "train_from", default=None,
+              help="First top-level block to train (earlier blocks are frozen and cached); default: the last block.")
+@click.option("--held-out", "held_out", type=click.FloatRange(0.05, 0.9), default=0.3, show_default=True,
+              help="Fraction of pairs never trained on; before/after are measured on them.")
+@click.option("--anchor-weight", type=click.FloatRange(0), default=None, help="Weight of the clean-feature anchor loss.")
+@click.option("--paired-weight", type=click.FloatRange(0), default=None, help="Weight of the paired consistency loss.")
+@click.option("--json", "json_path", type=click.Path(dir_okay=False, path_type=Path), help="Write the result JSON here.")
+@click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path), help="Write an HTML report here.")
+@click.option("--permutations", type=click.IntRange(1, 1_000_000), default=1000, show_default=True)
+@_run_options
+@_handle_errors
+def align(data, spec, weights, out_path, steps, minutes, train_from, held_out, anchor_weight, paired_weight, json_path,
+          report_path, permutations, seed, image_size, device, batch_size, cache_dir, no_cache, skip_unpaired, quiet):
+    """Briefly retrain the encoder's last block(s) so clutter no longer separates its features.
+
+    Gradient-reversal adversarial training (Ganin & Lempitsky 2015) against a small domain
+    discriminator, with an anchor that keeps clean features close to the original encoder's
+    and a task head on clean labels. A held-out share of the pairs is never trained on;
+    before/after are measured there. Ctrl-C keeps the best checkpoint so far.
+    """
+    from . import pipeline
+
+    _check_output_paths(out_path, json_path, report_path)
+    result = pipeline.align_dataset(
+        data, spec, weights=weights, out=out_path, steps=steps, minutes=minutes, train_from=train_from,
+        held_out_fraction=held_out, anchor_weight=anchor_weight, paired_weight=paired_weight, seed=seed,
+        image_size=image_size, device=device, batch_size=batch_size, skip_unpaired=skip_unpaired,
+        permutations=permutations, progress=not quiet,
+    )
+    _write_outputs(result, json_path=json_path, report_path=report_path)
+    _print_alignment(result)
+
+
+def _print_alignment(result):
+    from .results import metric_value
+
+    al = result["alignment"]
+    click.echo(f"aligned checkpoint: {al['checkpoint']} (load it as checkpoint:{al['checkpoint']})")
+    click.echo(f"stopped: {al.get('stopped_because', 'step limit')} after {al.get('steps_run', '?')} steps; "
+               f"measured on {al['held_out_pairs']} held-out pairs")
+    rows = [("domain accuracy", "domain_classifier", "accuracy"), ("relative drift", "paired_drift", "relative_drift"),
+            ("CKA", "cka", None)]
+    for label, group, key in rows:
+        before, after = metric_value(al["before"], group, key), metric_value(al["after"], group, key)
+        fmt = lambda v: "n/a" if v is None else f"{v:.3f}"
+        click.echo(f"  {label:<16} before {fmt(before)}  after {fmt(after)}")
+    for name, probe in al["after"].get("probe", {}).items():
+        b = al["before"].get("probe", {}).get(name, {})
+        if "clean" in probe and "clean" in b:
+            click.echo(f"  probe {name:<10} clean {b['clean']:.3f} -> {probe['clean']:.3f}   "
+                       f"cluttered {b['cluttered']:.3f} -> {probe['cluttered']:.3f}")
+    click.echo(f"note: {SAFETY_CAUTION}")
+
+
+@cli.command()
+@click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path), default=Path("reports/demo"),
+              show_default=True, help="Folder for the report and JSON files.")
+@click.option("--quiet", is_flag=True, help="No progress on stderr.")
+@_handle_errors
+def demo(out_dir, quiet):
+    """The whole job on the bundled sample scenes: score, align, compare, report."""
+    from .demo import run_demo
+
+    summary = run_demo(out_dir, progress=not quiet, echo=_echo_err(quiet))
+    for line in summary:
+        click.echo(line)
+
+
+@cli.command()
+@click.option("--pairs", type=click.IntRange(1), default=None, help="Estimate the run time for this many pairs.")
+@click.option("--encoder", "spec", default="torchvision:resnet18", show_default=True, help=ENCODER_HELP)
+@click.option("--json", "json_path", type=click.Path(dir_okay=False, path_type=Path), help="Write the figures as JSON.")
+@click.option("--quick", is_flag=True, help="Smaller workloads (a rough figure in well under a minute).")
+@_handle_errors
+def bench(pairs, spec, json_path, quick):
+    """Measure what a run costs on this machine: extraction, cache, statistics, alignment, scenes."""
+    from ._io import atomic_write_json
+    from .bench import run_bench
+
+    _check_output_paths(json_path)
+    figures = run_bench(spec=spec, pairs=pairs, quick=quick, echo=lambda m: click.echo(m))
+    if json_path:
+        atomic_write_json(json_path, figures)
+        click.echo(f"figures JSON: {json_path}")
+
+
 def main(argv=None):
     """Console-script entry point."""
     return cli.main(args=argv, prog_name="invariance")

@@ -277,4 +277,58 @@ def compare_encoders(
                 echo(f"  failed: {exc}")
     if not results:
         raise InvarianceError("every encoder failed: " + " | ".join(f"{f['name']}: {f['error']}" for f in failures))
-    return {"schema": COMPARISON_SCHEMA, "results": results, "failures": failures, "warnings": []}
+    from .results import make_comparison
+
+    return make_comparison(results, failures=failures)
+
+
+def align_dataset(
+    data,
+    spec: str,
+    *,
+    out,
+    weights=None,
+    steps: int = 300,
+    minutes: float | None = None,
+    train_from: str | None = None,
+    held_out_fraction: float = 0.3,
+    anchor_weight: float | None = None,
+    paired_weight: float | None = None,
+    seed: int = 0,
+    image_size: int | None = None,
+    device: str = "auto",
+    batch_size: int = 32,
+    skip_unpaired: bool = False,
+    permutations: int = 1000,
+    progress: bool = True,
+    pairs=None,
+) -> dict:
+    """Align an encoder on a data set and return a result whose ``metrics`` are the
+    aligned encoder's on the held-out pairs, with ``alignment`` holding before/after.
+    """
+    from .data import discover_pairs
+
+    if pairs is None:
+        pairs = discover_pairs(data, skip_unpaired=skip_unpaired)
+    from .align import align_encoder
+    from .encoders import load_encoder
+
+    encoder = load_encoder(spec, weights=weights, device=device, image_size=image_size)
+    optional = {"anchor_weight": anchor_weight, "paired_weight": paired_weight, "minutes": minutes,
+                "train_from": train_from}
+    start = time.perf_counter()
+    alignment = align_encoder(
+        pairs, encoder, out=out, steps=steps, held_out_fraction=held_out_fraction, seed=seed,
+        batch_size=batch_size, progress=progress, permutations=permutations,
+        **{k: v for k, v in optional.items() if v is not None},
+    )
+    elapsed = time.perf_counter() - start
+    return {
+        "schema": RESULT_SCHEMA,
+        "encoder": {**encoder.describe(), "name": f"{spec} aligned", "spec": f"checkpoint:{out}", "source_spec": spec,
+                    "layer": DEFAULT_LAYER},
+        "dataset": {**pairs.describe(), "content_hash": pairs.content_hash(), "image_size": _image_size(pairs)},
+        "metrics": alignment["after"],
+        "alignment": alignment,
+        "environment": environment_info(seed=seed, device=str(encoder.device), timings={"align": elapsed}),
+    }

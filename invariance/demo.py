@@ -1,0 +1,133 @@
+"""The whole job on the bundled sample scenes, as a newcomer's first run.
+
+Scores three encoders that behave like the ones a perception team has (a compact CNN
+trained on clean workbench scenes only, the same network trained with clutter as
+augmentation, and an untrained ResNet-18 as a floor), aligns the clean-only encoder on
+the bundled sample scenes, then compares all four on a second, freshly generated set of
+scenes that the alignment never saw, and writes the report.
+"""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+
+from . import SAFETY_CAUTION
+from ._io import atomic_write_json
+from .errors import InvarianceError
+
+SAMPLE_COMMAND = "invariance scenes sample_images --pairs 200 --size 128 --seed 7"
+SAMPLE_SEED, SAMPLE_PAIRS, SAMPLE_SIZE = 7, 200, 128
+# The evaluation scenes use another seed than the sample set, so no evaluation scene is
+# one the alignment trained on.
+EVAL_SEED, EVAL_PAIRS = 2027, 300
+
+DEMO_ENCODERS = (
+    {"spec": "python:invariance.zoo:clean_only_encoder", "name": "workbench CNN, clean-only training"},
+    {"spec": "python:invariance.zoo:clutter_augmented_encoder", "name": "workbench CNN, clutter-augmented"},
+    # ResNet-18 at random init is the floor: features with no training at all. 128 px keeps
+    # it near 180 img/s on 2 cores (REFERENCES.md, measured figures).
+    {"spec": "torchvision:resnet18", "name": "ResNet-18, untrained (floor)", "image_size": 128},
+)
+ALIGN_STEPS, ALIGN_MINUTES = 400, 1.5
+
+
+def sample_images_dir() -> Path | None:
+    """The committed sample set next to the package (a source checkout), if present."""
+    candidate = Path(__file__).resolve().parent.parent / "sample_images"
+    return candidate if (candidate / "clean").is_dir() else None
+
+
+def run_demo(out_dir="reports/demo", *, progress: bool = True, echo=print, cache_dir=None, seed: int = 0,
+             align_steps: int = ALIGN_STEPS, align_minutes: float = ALIGN_MINUTES, eval_pairs: int = EVAL_PAIRS,
+             permutations: int = 1000) -> list[str]:
+    """Run the demo and return the five-line summary.
+
+    Parameters
+    ----------
+    out_dir : path
+        Folder for ``report.html``, ``comparison.json``, ``alignment.json``, the aligned
+        checkpoint and the evaluation scenes. Existing demo outputs there are replaced.
+    """
+    from . import pipeline
+    from .scenes import generate_scenes
+
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    started = time.perf_counter()
+    sample = _sample_set(out_dir, echo)
+
+    echo(f"[1/3] aligning the clean-only encoder on {sample} (at most {align_minutes} min)")
+    checkpoint = out_dir / "aligned_clean_only.pt"
+    aligned = pipeline.align_dataset(
+        sample, DEMO_ENCODERS[0]["spec"], out=checkpoint, steps=align_steps, minutes=align_minutes, seed=seed,
+        progress=progress, permutations=permutations,
+    )
+    atomic_write_json(out_dir / "alignment.json", aligned)
+
+    eval_dir = out_dir / "eval_scenes"
+    if not (eval_dir / "labels.csv").is_file():
+        echo(f"[2/3] generating {eval_pairs} evaluation scenes the alignment never saw (seed {EVAL_SEED})")
+        _replace_dir(eval_dir)
+        generate_scenes(eval_dir, pairs=eval_pairs, size=SAMPLE_SIZE, seed=EVAL_SEED)
+
+    echo("[3/3] comparing four encoders on the evaluation scenes")
+    entries = [*DEMO_ENCODERS, {"spec": f"checkpoint:{checkpoint}", "name": "workbench CNN, clean-only, aligned"}]
+    comparison = pipeline.compare_encoders(
+        eval_dir, entries, seed=seed, permutations=permutations, cache_dir=cache_dir, progress=progress, echo=echo,
+    )
+    aligned_result = comparison["results"][-1]
+    aligned_result["alignment"] = aligned["alignment"]
+    atomic_write_json(out_dir / "comparison.json", comparison)
+
+    from .report.html import write_report
+
+    report = write_report(out_dir / "report.html", comparison["results"], failures=comparison["failures"],
+                          warnings=comparison["warnings"], title="invariance demo: parts-sorting workbench")
+    return _summary(comparison, report, time.perf_counter() - started)
+
+
+def _sample_set(out_dir: Path, echo) -> Path:
+    sample = sample_images_dir()
+    if sample is not None:
+        return sample
+    from .scenes import generate_scenes
+
+    sample = out_dir / "sample_images"
+    if not (sample / "labels.csv").is_file():
+        echo(f"sample_images/ not found next to the package; generating it ({SAMPLE_COMMAND})")
+        _replace_dir(sample)
+        generate_scenes(sample, pairs=SAMPLE_PAIRS, size=SAMPLE_SIZE, seed=SAMPLE_SEED)
+    return sample
+
+
+def _replace_dir(path: Path) -> None:
+    import shutil
+
+    if path.exists():
+        if not path.is_dir():
+            raise InvarianceError(f"{path} exists and is not a folder; remove it or choose another --out")
+        shutil.rmtree(path)
+
+
+def _summary(comparison: dict, report: Path, seconds: float) -> list[str]:
+    from .results import display_name, metric_value, rank_results
+
+    results = comparison["results"]
+    order = rank_results(results)
+    best = results[order[0]]
+    lines = [f"report: {report} ({seconds:.0f} s)"]
+    ranking = []
+    for i in order:
+        acc = metric_value(results[i]["metrics"], "domain_classifier", "accuracy")
+        drift = metric_value(results[i]["metrics"], "paired_drift", "relative_drift")
+        ranking.append(f"{display_name(results[i])} (domain acc {_fmt(acc)}, drift {_fmt(drift)})")
+    lines.append("ranking: " + " > ".join(ranking))
+    lines.append(f"most invariant: {display_name(best)}")
+    lines.append("domain acc 0.5 = clutter is invisible to a linear classifier; drift 0 = clutter moves no feature")
+    lines.append(f"caution: {SAFETY_CAUTION}")
+    return lines
+
+
+def _fmt(value):
+    return "n/a" if value is None else f"{value:.2f}"

@@ -1,0 +1,122 @@
+"""`invariance score --features`: outputs, gates and exit codes (DESIGN.md command-line contract)."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from invariance import SAFETY_CAUTION
+from invariance.cli import cli
+
+
+def _features(tmp_path, shift=0.0, n=120, d=24, seed=0):
+    rng = np.random.default_rng(seed)
+    scene = rng.normal(size=(n, d))
+    clean = scene + 0.3 * rng.normal(size=(n, d))
+    cluttered = scene + 0.3 * rng.normal(size=(n, d)) + shift
+    a, b = tmp_path / "clean.npy", tmp_path / "cluttered.npy"
+    np.save(a, clean.astype(np.float32))
+    np.save(b, cluttered.astype(np.float32))
+    return a, b
+
+
+def _labels(tmp_path, n=120):
+    rows = ["file,part,x,level"] + [f"s{i},{'nut' if i % 2 else 'bolt'},{i / n:.3f},{1 + i % 3}" for i in range(n)]
+    path = tmp_path / "labels.csv"
+    path.write_text("\n".join(rows) + "\n")
+    return path
+
+
+def _run(args):
+    return CliRunner().invoke(cli, args, catch_exceptions=False)
+
+
+def test_features_json_has_the_design_keys(tmp_path):
+    a, b = _features(tmp_path, shift=0.8)
+    out = tmp_path / "r.json"
+    res = _run(["score", "--features", str(a), str(b), "--labels", str(_labels(tmp_path)), "--json", str(out),
+                "--permutations", "200"])
+    assert res.exit_code == 0, res.output
+    result = json.loads(out.read_text())
+    assert result["schema"] == "invariance.result/1"
+    m = result["metrics"]
+    for key in ("accuracy", "ci", "proxy_a_distance", "p_value"):
+        assert key in m["domain_classifier"]
+    for key in ("mmd2", "p_value", "permutations", "bandwidth"):
+        assert key in m["mmd"]
+    assert m["mmd"]["permutations"] == 200
+    assert set(m["probe"]) == {"part", "x"}  # level is a breakdown column, not a probe
+    assert m["probe"]["part"]["kind"] == "classification" and m["probe"]["x"]["kind"] == "regression"
+    assert {"relative_drift", "pair_retrieval_top1"} <= set(m["paired_drift"])
+    assert isinstance(m["cka"], float)
+    assert set(result["breakdowns"]["level"]) == {"1", "2", "3"}
+    assert result["dataset"]["pairs"] == 120
+    # a shift of 0.8 per dimension is plainly visible
+    assert m["domain_classifier"]["accuracy"] > 0.8 and m["mmd"]["p_value"] < 0.05
+    assert SAFETY_CAUTION in res.output
+
+
+def test_same_inputs_and_seed_give_identical_json(tmp_path):
+    a, b = _features(tmp_path, shift=0.2)
+    outs = []
+    for i in range(2):
+        out = tmp_path / f"r{i}.json"
+        assert _run(["score", "--features", str(a), str(b), "--json", str(out), "--seed", "5",
+                     "--permutations", "100"]).exit_code == 0
+        result = json.loads(out.read_text())
+        result["environment"].pop("timings_s")
+        outs.append(result)
+    assert outs[0] == outs[1]
+
+
+def test_gate_failure_exits_3_and_names_the_gate(tmp_path):
+    a, b = _features(tmp_path, shift=1.0)
+    out = tmp_path / "r.json"
+    res = _run(["score", "--features", str(a), str(b), "--json", str(out), "--permutations", "50",
+                "--max-domain-accuracy", "0.6", "--max-relative-drift", "100"])
+    assert res.exit_code == 3
+    assert "gate not met: max_domain_accuracy" in res.output
+    assert "max_relative_drift" not in res.output.split("gate not met:")[1]
+    gates = json.loads(out.read_text())["gates"]  # the JSON is still written, with the verdict
+    assert gates["max_domain_accuracy"]["passed"] is False and gates["max_relative_drift"]["passed"] is True
+
+
+def test_gates_met_exit_0(tmp_path):
+    a, b = _features(tmp_path, shift=0.0)
+    res = _run(["score", "--features", str(a), str(b), "--permutations", "50", "--max-domain-accuracy", "0.95"])
+    assert res.exit_code == 0, res.output
+
+
+def test_drift_csv_lists_every_pair(tmp_path):
+    a, b = _features(tmp_path, shift=0.3)
+    csv_path = tmp_path / "drift.csv"
+    assert _run(["score", "--features", str(a), str(b), "--labels", str(_labels(tmp_path)), "--drift-csv",
+                 str(csv_path), "--permutations", "20"]).exit_code == 0
+    lines = csv_path.read_text().splitlines()
+    assert lines[0] == "file,relative_drift" and len(lines) == 121 and lines[1].startswith("s0,")
+
+
+@pytest.mark.parametrize(
+    "make, message",
+    [
+        (lambda a, b: np.save(b, np.load(a)[:-3]), "shape"),
+        (lambda a, b: np.save(b, np.where(np.arange(24) == 3, np.nan, np.load(b))), "NaN"),
+    ],
+)
+def test_bad_feature_files_exit_1_nothing_written(tmp_path, make, message):
+    a, b = _features(tmp_path)
+    make(a, b)
+    out = tmp_path / "r.json"
+    res = CliRunner().invoke(cli, ["score", "--features", str(a), str(b), "--json", str(out)])
+    assert res.exit_code == 1
+    assert message.lower() in res.output.lower()
+    assert not out.exists()
+
+
+def test_features_and_data_together_is_a_usage_error(tmp_path):
+    a, b = _features(tmp_path)
+    res = CliRunner().invoke(cli, ["score", str(tmp_path), "--features", str(a), str(b)])
+    assert res.exit_code == 2
