@@ -1,0 +1,372 @@
+"""Figures for the HTML report: small matplotlib (Agg) charts returned as PNG bytes.
+
+Figures are built on :class:`matplotlib.figure.Figure` with an Agg canvas, never through
+``pyplot``: nothing is registered in pyplot's figure manager, so no figure outlives the
+call and the user's own backend choice is left alone.
+
+Colours come from the Okabe-Ito palette (Okabe & Ito 2008, "Color Universal Design: how
+to make figures and presentations that are friendly to colorblind people"), which stays
+distinguishable under the common colour-vision deficiencies; clean and cluttered also
+differ by marker shape so that the projection reads in grey print.
+"""
+
+from __future__ import annotations
+
+import base64
+import io
+from typing import Sequence
+
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
+from PIL import Image
+
+# Okabe & Ito (2008), "Color Universal Design", the eight-colour set.
+CLEAN = "#0072B2"       # blue
+CLUTTERED = "#D55E00"   # vermillion
+SERIES = ("#0072B2", "#D55E00", "#009E73", "#E69F00", "#CC79A7", "#56B4E9", "#F0E442", "#000000")
+ENCODER = "#009E73"     # bluish green: encoder bars never borrow the clean/cluttered colours
+PAIRS = "#56B4E9"       # sky blue: per-pair counts
+NEUTRAL = "#6b6b6b"
+
+ACCURACY_LABEL = "accuracy (fraction of held-out images)"
+DRIFT_LABEL = "relative drift (1 = as far as a different scene)"
+CKA_LABEL = "linear CKA (1 = same representation)"
+MMD_LABEL = "MMD\u00b2 (unbiased, Gaussian kernel)"
+
+# Small figures at ~100 dpi keep a many-encoder report a few hundred kilobytes.
+_DPI = 100
+_WIDE = (6.4, 3.0)
+_PALETTE_COLOURS = 128
+
+
+def to_data_uri(png: bytes) -> str:
+    """A ``data:image/png;base64,...`` URI for PNG bytes."""
+    return "data:image/png;base64," + base64.b64encode(png).decode("ascii")
+
+
+def bar_with_intervals(labels: Sequence[str], values: Sequence[float | None],
+                       intervals: Sequence[tuple[float, float] | None] | None = None, *,
+                       ylabel: str, title: str, reference: float | None = None,
+                       reference_label: str | None = None, ylim: tuple[float, float] | None = None,
+                       annotations: Sequence[str] | None = None) -> bytes:
+    """One bar per encoder with optional 95% interval error bars and a reference line.
+
+    Parameters
+    ----------
+    labels : sequence of str
+        Encoder names, one per bar.
+    values : sequence of float or None
+        Bar heights; ``None`` (not computable) leaves an empty slot marked "n/a".
+    intervals : sequence of (lo, hi) or None, optional
+        Interval per bar, drawn as an error bar.
+    ylabel, title : str
+        Axis label (with its unit) and chart title.
+    reference : float, optional
+        Horizontal line, e.g. chance accuracy 0.5.
+    reference_label : str, optional
+        Legend text for the reference line.
+    ylim : (float, float), optional
+        Fixed y range.
+    annotations : sequence of str, optional
+        Text printed above each bar (e.g. a p-value).
+
+    Returns
+    -------
+    bytes
+        The PNG image.
+    """
+    fig, ax = _figure(_bar_size(len(labels)))
+    x = np.arange(len(labels))
+    heights = [v if v is not None else 0.0 for v in values]
+    ax.bar(x, heights, color=ENCODER, width=0.6, alpha=0.85)
+    if intervals is not None:
+        _error_bars(ax, x, values, intervals)
+    for xi, value in zip(x, values):
+        if value is None:
+            ax.text(xi, 0, "n/a", ha="center", va="bottom", fontsize=8, color=NEUTRAL)
+    if annotations is not None:
+        top = max([h for h in heights] + [1e-12])
+        for xi, height, text in zip(x, heights, annotations):
+            ax.text(xi, height + 0.02 * top, text, ha="center", va="bottom", fontsize=7)
+    if reference is not None:
+        ax.axhline(reference, color=NEUTRAL, linestyle="--", linewidth=1, label=reference_label)
+        if reference_label:
+            ax.legend(fontsize=7, loc="lower right", frameon=False)
+    if ylim is not None:
+        ax.set_ylim(*ylim)
+    _categorical_axis(ax, x, labels)
+    ax.set_ylabel(ylabel, fontsize=8)
+    ax.set_title(_plain(title), fontsize=9)
+    return _png(fig)
+
+
+def probe_chart(labels: Sequence[str], clean: Sequence[float | None], cluttered: Sequence[float | None], *,
+                task: str, metric: str) -> bytes:
+    """Probe score on held-out clean vs cluttered images, one bar pair per encoder.
+
+    Parameters
+    ----------
+    labels : sequence of str
+        Encoder names.
+    clean, cluttered : sequence of float or None
+        Probe score per encoder on clean and on cluttered images.
+    task : str
+        Label column the probe predicts.
+    metric : str
+        Score name (``accuracy`` or ``r2``), shown on the axis.
+
+    Returns
+    -------
+    bytes
+        The PNG image.
+    """
+    fig, ax = _figure(_bar_size(len(labels)))
+    x = np.arange(len(labels))
+    width = 0.36
+    for offset, values, colour, name, hatch in ((-width / 2, clean, CLEAN, "clean", None),
+                                                (width / 2, cluttered, CLUTTERED, "cluttered", "//")):
+        heights = [v if v is not None else 0.0 for v in values]
+        ax.bar(x + offset, heights, width=width, color=colour, label=name, hatch=hatch,
+               edgecolor="white", linewidth=0.5)
+    unit = "accuracy (fraction of held-out images)" if metric == "accuracy" else f"{metric} (held-out scenes)"
+    ax.set_ylabel(unit, fontsize=8)
+    ax.set_title(f"Probe '{_short(task, 24)}': held-out clean vs cluttered", fontsize=9)
+    top = max([v for v in list(clean) + list(cluttered) if v is not None] + [0.0])
+    ax.set_ylim(top=max(1.0, top) * 1.18)  # headroom so the legend never covers a bar
+    ax.legend(fontsize=7, frameon=False, loc="upper center", ncol=2)
+    _categorical_axis(ax, x, labels)
+    return _png(fig)
+
+
+def projection_chart(clean: np.ndarray, cluttered: np.ndarray, *, method: str = "PCA",
+                     explained: Sequence[float] | None = None, links: int = 20) -> bytes:
+    """Clean vs cluttered features in 2-D with thin lines joining a few pairs.
+
+    Parameters
+    ----------
+    clean, cluttered : ndarray of shape (n, 2)
+        Paired 2-D coordinates, row i of both arrays is scene i.
+    method : str
+        Projection name for the axis labels (``PCA`` or ``t-SNE``).
+    explained : sequence of float, optional
+        Explained variance ratio of the two components (PCA only).
+    links : int
+        How many pairs to join; evenly spaced over the data set so the choice is stable.
+
+    Returns
+    -------
+    bytes
+        The PNG image.
+    """
+    clean = np.asarray(clean, dtype=float).reshape(-1, 2)
+    cluttered = np.asarray(cluttered, dtype=float).reshape(-1, 2)
+    fig, ax = _figure((4.6, 3.6))
+    n = min(len(clean), len(cluttered))
+    for i in _link_indices(n, links):
+        ax.plot([clean[i, 0], cluttered[i, 0]], [clean[i, 1], cluttered[i, 1]],
+                color=NEUTRAL, linewidth=0.5, alpha=0.7, zorder=1)
+    ax.scatter(clean[:, 0], clean[:, 1], s=10, c=CLEAN, marker="o", label="clean", zorder=2, alpha=0.8)
+    ax.scatter(cluttered[:, 0], cluttered[:, 1], s=12, c=CLUTTERED, marker="^", label="cluttered",
+               zorder=2, alpha=0.8)
+    for axis, setter in enumerate((ax.set_xlabel, ax.set_ylabel)):
+        share = ""
+        if explained is not None and len(explained) > axis:
+            share = f" ({100 * float(explained[axis]):.0f}% of variance)"
+        setter(f"{method} {axis + 1}{share}", fontsize=8)
+    ax.set_title(f"{method} of features; grey lines join {min(links, n)} pairs", fontsize=9)
+    ax.legend(fontsize=7, framealpha=0.85, loc="best")
+    return _png(fig)
+
+
+def drift_histogram(drifts: Sequence[float], *, worst_from: float | None = None) -> bytes:
+    """Histogram of per-pair relative drift, with the median and the worst-pair cut marked.
+
+    Parameters
+    ----------
+    drifts : sequence of float
+        Relative drift of every pair.
+    worst_from : float, optional
+        Smallest drift among the worst pairs shown as thumbnails.
+
+    Returns
+    -------
+    bytes
+        The PNG image.
+    """
+    values = np.asarray([d for d in drifts if d is not None and np.isfinite(d)], dtype=float)
+    fig, ax = _figure(_WIDE)
+    if values.size:
+        ax.hist(values, bins=min(30, max(5, values.size // 4)), color=PAIRS, alpha=0.9)
+        median = float(np.median(values))
+        ax.axvline(median, color="#000000", linewidth=1, label=f"median {median:.2f}")
+    if worst_from is not None:
+        ax.axvline(worst_from, color=CLUTTERED, linestyle="--", linewidth=1, label="worst pairs shown below")
+    ax.axvline(1.0, color=NEUTRAL, linestyle=":", linewidth=1, label="as far as a different scene")
+    ax.set_xlabel(DRIFT_LABEL, fontsize=8)
+    ax.set_ylabel("pairs (count)", fontsize=8)
+    ax.set_title("How far clutter moves each scene's feature", fontsize=9)
+    ax.legend(fontsize=7, frameon=False)
+    return _png(fig)
+
+
+def line_profile(xlabels: Sequence[str], series: dict[str, Sequence[float | None]], *,
+                 xlabel: str, ylabel: str, title: str, reference: float | None = None,
+                 reference_label: str | None = None) -> bytes:
+    """Several metrics (or factors) drawn as lines over ordered categories.
+
+    Parameters
+    ----------
+    xlabels : sequence of str
+        Categories in order (layers in network order, or clutter levels).
+    series : dict of str to sequence of float or None
+        One line per entry; ``None`` values leave a gap.
+    xlabel, ylabel, title : str
+        Axis labels (with units) and title.
+    reference : float, optional
+        Horizontal reference line (chance accuracy).
+    reference_label : str, optional
+        Legend text for the reference line.
+
+    Returns
+    -------
+    bytes
+        The PNG image.
+    """
+    fig, ax = _figure((6.4, 3.6))
+    x = np.arange(len(xlabels))
+    markers = "osD^vP*X"
+    for i, (name, values) in enumerate(series.items()):
+        y = np.array([v if v is not None else np.nan for v in values], dtype=float)
+        ax.plot(x, y, marker=markers[i % len(markers)], markersize=4, linewidth=1.4,
+                color=SERIES[i % len(SERIES)], label=_short(name, 30))
+    if reference is not None:
+        ax.axhline(reference, color=NEUTRAL, linestyle="--", linewidth=1, label=reference_label)
+    ax.set_xticks(x)
+    rotate = 30 if max((len(s) for s in xlabels), default=0) > 6 or len(xlabels) > 8 else 0
+    ax.set_xticklabels([_short(s, 18) for s in xlabels], fontsize=7, rotation=rotate,
+                       ha="right" if rotate else "center")
+    ax.set_xlabel(xlabel, fontsize=8)
+    ax.set_ylabel(ylabel, fontsize=8)
+    ax.set_title(_plain(title), fontsize=9)
+    if ax.get_legend_handles_labels()[0]:
+        # Below the axes: lines near the top (CKA close to 1) must stay readable.
+        ax.legend(fontsize=7, frameon=False, loc="upper center", bbox_to_anchor=(0.5, -0.28),
+                  ncol=min(4, len(series) + (reference is not None)))
+    return _png(fig)
+
+
+def alignment_curves(curves: dict[str, Sequence[float]]) -> bytes | None:
+    """Training curves of an alignment run: domain accuracies, losses and lambda over steps.
+
+    Parameters
+    ----------
+    curves : dict
+        ``step`` plus any of ``discriminator_accuracy``, ``val_domain_accuracy``,
+        ``loss_total``, ``loss_anchor``, ``loss_task``, ``lambda``.
+
+    Returns
+    -------
+    bytes or None
+        The PNG image, or ``None`` when there is nothing to draw.
+    """
+    steps = np.asarray(curves.get("step") or [], dtype=float)
+    if steps.size == 0:
+        return None
+    fig = Figure(figsize=(9.0, 2.8), dpi=_DPI)
+    FigureCanvasAgg(fig)
+    panels = (
+        (("discriminator_accuracy", "val_domain_accuracy"), "domain accuracy (fraction)", 0.5),
+        (("loss_total", "loss_anchor", "loss_task"), "loss (training objective)", None),
+        (("lambda",), "gradient-reversal weight \u03bb", None),
+    )
+    for i, (keys, ylabel, chance) in enumerate(panels):
+        ax = fig.add_subplot(1, 3, i + 1)
+        _style_axes(ax)
+        for j, key in enumerate(keys):
+            values = _curve(curves.get(key), steps.size)
+            if values is not None:
+                ax.plot(steps, values, color=SERIES[j], linewidth=1.2, label=key.replace("_", " "))
+        if chance is not None:
+            ax.axhline(chance, color=NEUTRAL, linestyle="--", linewidth=0.8, label="chance")
+        ax.set_xlabel("training step", fontsize=7)
+        ax.set_ylabel(ylabel, fontsize=7)
+        ax.tick_params(labelsize=6)
+        if ax.get_legend_handles_labels()[0]:
+            ax.legend(fontsize=6, frameon=False)
+    fig.tight_layout()
+    return _png(fig, tight=False)
+
+
+def _figure(size: tuple[float, float]):
+    fig = Figure(figsize=size, dpi=_DPI)
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot(1, 1, 1)
+    _style_axes(ax)
+    return fig, ax
+
+
+def _style_axes(ax) -> None:
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    ax.tick_params(labelsize=7)
+    ax.grid(axis="y", color="#dddddd", linewidth=0.6)
+    ax.set_axisbelow(True)
+
+
+def _png(fig: Figure, *, tight: bool = True) -> bytes:
+    if tight:
+        fig.tight_layout()
+    fig.canvas.draw()
+    rgb = Image.fromarray(np.asarray(fig.canvas.buffer_rgba())).convert("RGB")
+    fig.clf()
+    # Line art needs few colours: a 128-colour palette cuts the PNG to about a third, which
+    # keeps a many-encoder report small. PIL writes no text chunks, so the file carries no
+    # "Software" note with a web address in it.
+    buffer = io.BytesIO()
+    rgb.quantize(colors=_PALETTE_COLOURS, method=Image.Quantize.MEDIANCUT).save(buffer, format="PNG", optimize=True)
+    return buffer.getvalue()
+
+
+def _bar_size(count: int) -> tuple[float, float]:
+    return (max(3.6, min(7.2, 1.6 + 0.9 * count)), 3.0)
+
+
+def _categorical_axis(ax, x: np.ndarray, labels: Sequence[str]) -> None:
+    ax.set_xticks(x)
+    rotate = 20 if len(labels) > 3 or max((len(s) for s in labels), default=0) > 14 else 0
+    ax.set_xticklabels([_short(s, 22) for s in labels], fontsize=7, rotation=rotate,
+                       ha="right" if rotate else "center")
+    ax.set_xlim(-0.7, len(labels) - 0.3)
+
+
+def _error_bars(ax, x: np.ndarray, values, intervals) -> None:
+    for xi, value, interval in zip(x, values, intervals):
+        if value is None or interval is None:
+            continue
+        lo, hi = interval
+        ax.errorbar([xi], [value], yerr=[[max(0.0, value - lo)], [max(0.0, hi - value)]],
+                    color="#000000", capsize=4, linewidth=1)
+
+
+def _link_indices(n: int, links: int) -> np.ndarray:
+    if n == 0 or links <= 0:
+        return np.array([], dtype=int)
+    return np.unique(np.linspace(0, n - 1, num=min(n, links)).round().astype(int))
+
+
+def _curve(values, length: int):
+    if not values or len(values) != length:
+        return None
+    return np.array([v if v is not None else np.nan for v in values], dtype=float)
+
+
+def _short(text: str, limit: int) -> str:
+    text = str(text)
+    text = text if len(text) <= limit else text[: limit - 1] + "\u2026"
+    return _plain(text)
+
+
+def _plain(text: str) -> str:
+    # A "$" in an encoder or label name would switch matplotlib into math mode.
+    return str(text).replace("$", r"\$")

@@ -1,0 +1,151 @@
+"""Loading, checking, bundling and ranking result files (invariance.results)."""
+
+from __future__ import annotations
+
+import json
+import math
+
+import pytest
+
+from invariance.errors import InvarianceError
+from invariance.results import (
+    COMPARISON_SCHEMA,
+    RESULT_SCHEMA,
+    check_same_dataset,
+    load_as_comparison,
+    load_result_files,
+    make_comparison,
+    metric_value,
+    rank_results,
+    validate_result,
+)
+from report_fixtures import make_failure, make_result, not_computable
+
+
+def _write(path, data):
+    path.write_text(json.dumps(data), encoding="utf-8")
+    return path
+
+
+def _light(seed, name, **kw):
+    return make_result(seed=seed, name=name, spec=f"python:bench:{name}", with_layers=False,
+                       with_breakdowns=False, **kw)
+
+
+def _with(result, accuracy=None, drift=None):
+    if accuracy is not None:
+        result["metrics"]["domain_classifier"]["accuracy"] = accuracy
+    if drift is not None:
+        result["metrics"]["paired_drift"]["relative_drift"] = drift
+    return result
+
+
+def test_load_flattens_comparisons_in_order(tmp_path):
+    a, b, c = _light(1, "a"), _light(2, "b"), _light(3, "c")
+    single = _write(tmp_path / "a.json", a)
+    bundle = _write(tmp_path / "bc.json", make_comparison([b, c]))
+    loaded = load_result_files([single, bundle])
+    assert [r["encoder"]["name"] for r in loaded] == ["a", "b", "c"]
+
+
+def test_load_as_comparison_keeps_failures_and_warnings(tmp_path):
+    bundle = make_comparison([_light(1, "a")], failures=[make_failure("broken")], warnings=["few pairs"])
+    comparison = load_as_comparison([_write(tmp_path / "cmp.json", bundle)])
+    assert comparison["schema"] == COMPARISON_SCHEMA
+    assert [f["name"] for f in comparison["failures"]] == ["broken"]
+    assert comparison["warnings"] == ["few pairs"]
+
+
+@pytest.mark.parametrize("schema", ["invariance.result/2", "invariance.comparison/9", "other.tool/1", None])
+def test_other_schema_names_the_file_and_what_is_expected(tmp_path, schema):
+    data = _light(1, "a")
+    data["schema"] = schema
+    path = _write(tmp_path / "odd_result.json", data)
+    with pytest.raises(InvarianceError) as info:
+        load_result_files([path])
+    message = str(info.value)
+    assert str(path) in message and RESULT_SCHEMA in message
+    assert "\n" not in message
+
+
+def test_bad_result_inside_a_comparison_names_file_and_position(tmp_path):
+    bundle = make_comparison([_light(1, "a")])
+    bundle["results"].append({"schema": "invariance.result/0"})
+    path = _write(tmp_path / "cmp.json", bundle)
+    with pytest.raises(InvarianceError, match=r"cmp\.json \(result 2\)"):
+        load_result_files([path])
+
+
+def test_not_json_and_missing_file_name_the_file(tmp_path):
+    broken = tmp_path / "broken.json"
+    broken.write_text("{not json", encoding="utf-8")
+    with pytest.raises(InvarianceError, match="broken.json: not valid JSON"):
+        load_result_files([broken])
+    with pytest.raises(InvarianceError, match="absent.json: file not found"):
+        load_result_files([tmp_path / "absent.json"])
+    with pytest.raises(InvarianceError, match="no result file"):
+        load_result_files([])
+
+
+def test_validate_requires_encoder_spec_and_metrics():
+    result = _light(1, "a")
+    del result["encoder"]["spec"]
+    with pytest.raises(InvarianceError, match="mine.json: \"encoder.spec\" is missing"):
+        validate_result(result, source="mine.json")
+    result = _light(1, "a")
+    del result["metrics"]
+    with pytest.raises(InvarianceError, match="\"metrics\" is missing"):
+        validate_result(result, source="mine.json")
+
+
+def test_same_dataset_gives_no_warning():
+    assert check_same_dataset([_light(1, "a"), _light(2, "b")]) == []
+
+
+def test_mixed_datasets_warn_with_names():
+    a, b = _light(1, "a"), _light(2, "b", content_hash="sha256:ffff", pairs=30)
+    warnings = check_same_dataset([a, b])
+    assert len(warnings) == 2  # one for the hash, one for the pair count
+    assert all("different data sets" in w for w in warnings)
+    assert "sha256:ffff: b" in warnings[0] and "sha256:0a1b2c3d: a" in warnings[0]
+
+
+def test_make_comparison_adds_dataset_warning_once_and_normalises_failures():
+    a, b = _light(1, "a"), _light(2, "b", content_hash="sha256:ffff")
+    first = make_comparison([a, b], failures=[{"spec": "torchscript:x.pt", "error": "boom"}])
+    again = make_comparison([a, b], warnings=first["warnings"])
+    assert len(first["warnings"]) == 1 and again["warnings"] == first["warnings"]
+    assert first["failures"] == [{"spec": "torchscript:x.pt", "name": "torchscript:x.pt", "error": "boom"}]
+
+
+def test_rank_lower_domain_accuracy_first():
+    results = [_with(_light(i, str(i)), accuracy=acc) for i, acc in enumerate([0.9, 0.55, 0.7])]
+    assert rank_results(results) == [1, 2, 0]
+
+
+def test_rank_ties_at_three_decimals_broken_by_drift():
+    results = [
+        _with(_light(1, "a"), accuracy=0.6001, drift=0.4),
+        _with(_light(2, "b"), accuracy=0.6004, drift=0.2),
+        _with(_light(3, "c"), accuracy=0.6010, drift=0.1),
+    ]
+    # a and b tie at 0.600, so b's lower drift wins; c is 0.601 and ranks after both.
+    assert rank_results(results) == [1, 0, 2]
+
+
+def test_rank_not_computable_last_ordered_by_drift():
+    nc_high = _with(not_computable(_light(1, "nc_high"), "domain_classifier", "one class only"), drift=0.9)
+    nc_low = _with(not_computable(_light(2, "nc_low"), "domain_classifier", "one class only"), drift=0.1)
+    worst = _with(_light(3, "worst"), accuracy=0.99, drift=1.2)
+    no_drift = not_computable(not_computable(_light(4, "none"), "domain_classifier", "x"), "paired_drift", "y")
+    assert rank_results([nc_high, no_drift, worst, nc_low]) == [2, 3, 0, 1]
+
+
+def test_metric_value_refuses_not_computable_and_non_finite():
+    metrics = _light(1, "a")["metrics"]
+    assert metric_value(metrics, "cka") == pytest.approx(metrics["cka"])
+    metrics["paired_drift"]["relative_drift"] = math.nan
+    assert metric_value(metrics, "paired_drift", "relative_drift") is None
+    metrics["mmd"] = {"not_computable": "fewer than 4 pairs"}
+    assert metric_value(metrics, "mmd", "mmd2") is None
+    assert metric_value(metrics, "absent", "x") is None
