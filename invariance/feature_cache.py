@@ -1,0 +1,117 @@
+"""On-disk cache of extracted features, one ``.npz`` file per (encoder, layer, images).
+
+An entry is ``<cache_dir>/<key>.npz`` holding the ``clean`` and ``cluttered`` float32
+matrices and a small JSON header (format, key, spec, layer, shapes, content hash and a
+SHA-256 checksum of the two arrays). The key is a SHA-256 over everything that changes the
+features, so a changed image, weight, layer or preprocessing is a different file; an entry
+whose header, shapes or checksum do not match is reported, deleted and rebuilt.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import io
+import json
+import warnings
+import zipfile
+from pathlib import Path
+
+import numpy as np
+
+from invariance._io import atomic_write_bytes
+
+FORMAT = "invariance.features/1"
+
+
+def cache_key(parts: dict) -> str:
+    """SHA-256 of ``parts`` written as canonical JSON (sorted keys, no spaces)."""
+    text = json.dumps(parts, sort_keys=True, separators=(",", ":"), default=str)
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def entry_path(cache_dir, key: str) -> Path:
+    return Path(cache_dir) / f"{key}.npz"
+
+
+def array_checksum(clean: np.ndarray, cluttered: np.ndarray) -> str:
+    """SHA-256 over dtype, shape and bytes of both matrices (detects bit rot and edits)."""
+    digest = hashlib.sha256()
+    for arr in (clean, cluttered):
+        arr = np.ascontiguousarray(arr)
+        digest.update(f"{arr.dtype.str}{arr.shape}".encode("ascii"))
+        digest.update(arr.tobytes())
+    return digest.hexdigest()
+
+
+def store(cache_dir, key: str, clean: np.ndarray, cluttered: np.ndarray, header: dict) -> Path:
+    """Write one entry atomically; ``header`` is completed with format, key, shapes and checksum."""
+    clean = np.ascontiguousarray(clean, dtype=np.float32)
+    cluttered = np.ascontiguousarray(cluttered, dtype=np.float32)
+    full = dict(header)
+    full.update(
+        format=FORMAT,
+        key=key,
+        shape=list(clean.shape),
+        checksum=array_checksum(clean, cluttered),
+    )
+    meta = np.frombuffer(json.dumps(full, sort_keys=True).encode("utf-8"), dtype=np.uint8)
+    buf = io.BytesIO()
+    np.savez(buf, clean=clean, cluttered=cluttered, header=meta)
+    return atomic_write_bytes(entry_path(cache_dir, key), buf.getvalue())
+
+
+def load(cache_dir, key: str, *, rows: int, content_hash: str):
+    """The cached ``(clean, cluttered)`` for ``key``, or ``None`` when absent or unusable.
+
+    A present entry that cannot be read, belongs to another key or image set, has the
+    wrong number of rows or fails its checksum is deleted with a warning, so the caller
+    extracts again and writes a fresh one.
+    """
+    path = entry_path(cache_dir, key)
+    if not path.is_file():
+        return None
+    try:
+        clean, cluttered, header = _read(path)
+    except (OSError, ValueError, KeyError, zipfile.BadZipFile, EOFError, json.JSONDecodeError) as exc:
+        return _discard(path, f"unreadable ({type(exc).__name__})")
+    problem = _problem(header, clean, cluttered, key=key, rows=rows, content_hash=content_hash)
+    if problem:
+        return _discard(path, problem)
+    return clean, cluttered
+
+
+def _read(path: Path):
+    with np.load(path, allow_pickle=False) as npz:
+        clean = np.array(npz["clean"])
+        cluttered = np.array(npz["cluttered"])
+        header = json.loads(bytes(npz["header"]).decode("utf-8"))
+    if not isinstance(header, dict):
+        raise ValueError("header is not an object")
+    return clean, cluttered, header
+
+
+def _problem(header: dict, clean, cluttered, *, key: str, rows: int, content_hash: str) -> str | None:
+    # Checked in order of cheapness; the checksum reads every byte.
+    if header.get("format") != FORMAT:
+        return f"of another format ({header.get('format')!r})"
+    if header.get("key") != key or header.get("content_hash") != content_hash:
+        return "stale (written for other images or another encoder)"
+    if clean.shape != cluttered.shape or clean.ndim != 2 or clean.shape[0] != rows:
+        return f"of the wrong shape ({clean.shape} and {cluttered.shape} for {rows} pairs)"
+    if list(clean.shape) != header.get("shape") or clean.dtype != np.float32:
+        return "inconsistent with its header"
+    if array_checksum(clean, cluttered) != header.get("checksum"):
+        return "corrupt (checksum mismatch)"
+    return None
+
+
+def _discard(path: Path, reason: str) -> None:
+    warnings.warn(
+        f"feature cache entry {path} is {reason}; deleting it and extracting again",
+        RuntimeWarning,
+        stacklevel=3,
+    )
+    with contextlib.suppress(FileNotFoundError):
+        path.unlink()
+    return None
