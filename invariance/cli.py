@@ -73,20 +73,12 @@ def _cache_dir(cache_dir, no_cache):
 
 
 def _check_output_paths(*paths):
-    """Fail before any work when an output file cannot be written."""
-    for path in paths:
-        if path is None:
-            continue
-        parent = Path(path).resolve().parent
-        probe = parent
-        while not probe.exists():
-            probe = probe.parent
-        import os
+    """Fail before any work when an output file cannot be written (a real test write)."""
+    from .report.html import check_writable
 
-        if not os.access(probe, os.W_OK):
-            raise InvarianceError(f"cannot write {path}: {probe} is not writable; choose another output path")
-        if Path(path).is_dir():
-            raise InvarianceError(f"{path} is a folder; give a file name for the output")
+    for path in paths:
+        if path is not None:
+            check_writable(path)
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
@@ -263,12 +255,17 @@ def _csv_cell(text):
 @click.option("--encoder", "spec", required=True, help=ENCODER_HELP)
 @click.option("--weights", type=click.Path(dir_okay=False, path_type=Path), help="Local state_dict for a torchvision: spec.")
 @click.option("--device", type=click.Choice(["auto", "cpu", "cuda"]), default="cpu", show_default=True)
+@click.option("--image-size", type=click.IntRange(16, 2048), default=None, help="Input size the encoder will be run at.")
 @_handle_errors
-def layers(spec, weights, device):
-    """List the graph nodes an encoder can be tapped at (for --layer and --train-from)."""
+def layers(spec, weights, device, image_size):
+    """List the graph nodes an encoder can be tapped at (for --layer).
+
+    Block names (layer3) work as well as inner nodes; the input node taps raw pixels as a
+    baseline. --train-from in `invariance align` takes a top-level block name.
+    """
     from .encoders import available_layers, load_encoder
 
-    encoder = load_encoder(spec, weights=weights, device=device)
+    encoder = load_encoder(spec, weights=weights, device=device, image_size=image_size)
     for node in available_layers(encoder):
         click.echo(node)
 

@@ -1,0 +1,229 @@
+"""What a run costs on this machine: every figure beside its reference, measured in one run.
+
+Speed is reported as ratios measured back to back in one process, because the machines
+this runs on are shared and absolute timings drift (common practice for noisy hosts).
+"""
+
+from __future__ import annotations
+
+import os
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+# Targets from the project's issues; each figure is printed beside its target.
+TARGETS = {
+    "extract_over_bare": 1.15,  # end-to-end extraction within 1.15x of the bare forward pass
+    "warm_cache_speedup": 20.0,  # a warm-cache rerun at least 20x faster
+    "stats_share": 0.10,  # statistics under 10% of the extraction time, 2,000 x 512-d
+    "feature_memory_gib": 1.0,  # 5,000 pairs of 512-d features, above the model's own memory
+    "stats_memory_gib": 4.0,  # 20,000 x 512-d statistics peak memory
+    "align_step_ratio": 0.40,  # cached-trunk step of the last ResNet-18 block vs a whole-network step
+    "scenes_pairs_per_s": 200.0,  # scene generation at 128 px on one core
+}
+
+
+def _timed(fn) -> tuple[float, object]:
+    start = time.perf_counter()
+    out = fn()
+    return time.perf_counter() - start, out
+
+
+def bench_scenes(pairs: int = 200, size: int = 128) -> dict:
+    """Scene generation rate at ``size`` px: rendering alone, and rendering plus PNG writing."""
+    from .scenes import generate_scenes, pair_rng, render_pair
+
+    render_s, _ = _timed(lambda: [render_pair(pair_rng(0, i), size) for i in range(pairs)])
+    with tempfile.TemporaryDirectory(dir=os.getcwd() if os.access(os.getcwd(), os.W_OK) else None) as tmp:
+        write_s, _ = _timed(lambda: generate_scenes(Path(tmp) / "s", pairs=pairs, size=size, seed=0))
+    return {"pairs": pairs, "size_px": size, "render_pairs_per_s": pairs / render_s,
+            "render_and_write_pairs_per_s": pairs / write_s}
+
+
+def _bare_forward_s(images, encoder, batch_size: int) -> float:
+    import torch
+
+    with torch.inference_mode():
+        encoder.module(images[:2])  # warm-up
+        start = time.perf_counter()
+        for i in range(0, len(images), batch_size):
+            encoder.module(images[i : i + batch_size])
+        return time.perf_counter() - start
+
+
+def bench_extraction(pairs, spec: str = "torchvision:resnet18", *, image_size: int | None = 224,
+                     batch_size: int = 32) -> dict:
+    """End-to-end extraction vs the bare forward pass on preloaded tensors; cold vs warm cache."""
+    import torch
+
+    from .data import load_rgb
+    from .encoders import extract_features, load_encoder
+
+    encoder = load_encoder(spec, device="cpu", image_size=image_size)
+    images = torch.stack([encoder.preprocess(load_rgb(p)) for pair in zip(pairs.clean, pairs.cluttered) for p in pair])
+    bare_before = _bare_forward_s(images, encoder, batch_size)
+    with tempfile.TemporaryDirectory() as cache:
+        cold_s, _ = _timed(lambda: extract_features(pairs, encoder, batch_size=batch_size, cache_dir=cache,
+                                                    progress=False))
+        warm_s, _ = _timed(lambda: extract_features(pairs, encoder, batch_size=batch_size, cache_dir=cache,
+                                                    progress=False))
+    bare_after = _bare_forward_s(images, encoder, batch_size)
+    bare_s = (bare_before + bare_after) / 2  # the host is shared: average the bracketing runs
+    n_images = len(images)
+    return {"spec": spec, "image_size": image_size, "pairs": len(pairs), "bare_forward_s": bare_s,
+            "bare_images_per_s": n_images / bare_s, "extract_s": cold_s, "extract_images_per_s": n_images / cold_s,
+            "extract_over_bare": cold_s / bare_s, "warm_cache_s": warm_s, "warm_cache_speedup": cold_s / warm_s}
+
+
+def bench_statistics(n_pairs: int = 2000, dim: int = 512, permutations: int = 1000) -> dict:
+    """The whole statistics stage (all metrics) on synthetic paired features."""
+    from .scoring import score_features
+
+    rng = np.random.default_rng(0)
+    scene = rng.normal(size=(n_pairs, dim)).astype(np.float32)
+    clean = scene + 0.5 * rng.normal(size=scene.shape).astype(np.float32)
+    cluttered = scene + 0.5 * rng.normal(size=scene.shape).astype(np.float32) + 0.1
+    tasks = {"part": np.array(["bolt", "nut", "gear", "washer"])[np.arange(n_pairs) % 4]}
+    factors = {"level": (1 + np.arange(n_pairs) % 3).astype(str)}
+    seconds, _ = _timed(lambda: score_features(clean, cluttered, tasks=tasks, factors=factors,
+                                               permutations=permutations, seed=0))
+    return {"pairs": n_pairs, "dim": dim, "permutations": permutations, "seconds": seconds}
+
+
+_STATS_MEMORY_CHILD = """
+import resource, sys, numpy as np
+from invariance.scoring import score_features
+n, d = int(sys.argv[1]), int(sys.argv[2])
+rng = np.random.default_rng(0)
+x = rng.normal(size=(n, d)).astype(np.float32)
+y = x + 0.5 * rng.normal(size=(n, d)).astype(np.float32)
+before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+score_features(x, y, permutations=200, seed=0)
+print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, before)
+"""
+
+
+def bench_statistics_memory(n_pairs: int = 20000, dim: int = 512) -> dict:
+    """Peak resident memory of the statistics stage, in a fresh process (its own figure only)."""
+    start = time.perf_counter()
+    out = subprocess.run([sys.executable, "-c", _STATS_MEMORY_CHILD, str(n_pairs), str(dim)],
+                         capture_output=True, text=True, check=True)
+    peak_kib, before_kib = (int(v) for v in out.stdout.split())
+    return {"pairs": n_pairs, "dim": dim, "peak_rss_gib": peak_kib / 2**20, "before_gib": before_kib / 2**20,
+            "seconds": time.perf_counter() - start}
+
+
+def bench_feature_memory(n_pairs: int = 5000, dim: int = 512) -> dict:
+    """Memory held by ``n_pairs`` of ``dim``-d paired float32 features (what extraction returns)."""
+    before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    clean = np.ones((n_pairs, dim), np.float32)
+    cluttered = np.ones((n_pairs, dim), np.float32)
+    return {"pairs": n_pairs, "dim": dim, "arrays_gib": (clean.nbytes + cluttered.nbytes) / 2**30,
+            "rss_growth_gib": max(0, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss - before) / 2**20}
+
+
+def bench_align_step(image_size: int = 128, batch_size: int = 32, steps: int = 5) -> dict:
+    """A training step of ResNet-18's last block with the frozen trunk cached vs run every step."""
+    import torch
+
+    from .align import split_module
+    from .encoders import load_encoder
+
+    torch.manual_seed(0)
+    module = load_encoder("torchvision:resnet18", device="cpu").module.train()
+    x = torch.randn(batch_size, 3, image_size, image_size)
+    trunk, tail, _ = split_module(module, "layer4", x[:2])
+    for p in trunk.parameters():
+        p.requires_grad_(False)
+    opt = torch.optim.SGD(tail.parameters(), lr=1e-3)
+    with torch.no_grad():
+        cached = trunk(x)
+
+    def step(run_trunk: bool):
+        opt.zero_grad()
+        if run_trunk:
+            with torch.no_grad():
+                acts = trunk(x)
+        else:
+            acts = cached
+        tail(acts).pow(2).mean().backward()
+        opt.step()
+
+    step(True), step(False)  # warm-up
+    whole_s, _ = _timed(lambda: [step(True) for _ in range(steps)])
+    cached_s, _ = _timed(lambda: [step(False) for _ in range(steps)])
+    return {"image_size": image_size, "batch_size": batch_size, "whole_network_step_s": whole_s / steps,
+            "cached_trunk_step_s": cached_s / steps, "align_step_ratio": cached_s / whole_s}
+
+
+def estimate_seconds(n_pairs: int, extraction: dict, statistics: dict) -> dict:
+    """Rough time for ``n_pairs``: extraction scales with images, statistics with pairs squared
+    up to the exact-MMD limit (the kernel matrix), linearly beyond it (subsampled MMD)."""
+    from .metrics.mmd import MAX_PAIRS
+
+    extract = 2 * n_pairs / extraction["extract_images_per_s"]
+    ratio = n_pairs / statistics["pairs"]
+    capped = min(n_pairs, MAX_PAIRS) / statistics["pairs"]
+    stats = statistics["seconds"] * max(ratio, capped**2)
+    return {"pairs": n_pairs, "extract_s": extract, "statistics_s": stats, "total_s": extract + stats}
+
+
+def _line(label, value, unit, target=None, better="below"):
+    text = f"{label:<44} {value:10.3f} {unit}"
+    if target is not None:
+        ok = value <= target if better == "below" else value >= target
+        text += f"   target {'<=' if better == 'below' else '>='} {target:g}  {'met' if ok else 'NOT met'}"
+    return text
+
+
+def run_bench(*, spec: str = "torchvision:resnet18", pairs: int | None = None, quick: bool = False, echo=print) -> dict:
+    """Measure every figure and print it beside its target; returns the figures as a dict."""
+    from .data import discover_pairs
+    from .demo import sample_images_dir
+    from .scenes import generate_scenes
+
+    figures = {"targets": TARGETS, "cpu_count": os.cpu_count()}
+    n_sample = 40 if quick else 200
+    sample = sample_images_dir()
+    with tempfile.TemporaryDirectory() as tmp:
+        if sample is None:
+            sample = generate_scenes(Path(tmp) / "sample", pairs=n_sample, size=128, seed=7)
+        data = discover_pairs(sample).subset(range(n_sample))
+        echo(f"measuring on {len(data)} pairs from {sample} ({os.cpu_count()} CPU cores)")
+        ex = figures["extraction"] = bench_extraction(data, spec, image_size=224)
+    echo(_line(f"bare forward pass ({spec}, 224 px)", ex["bare_images_per_s"], "img/s"))
+    echo(_line("end-to-end extraction", ex["extract_images_per_s"], "img/s"))
+    echo(_line("extraction / bare forward pass", ex["extract_over_bare"], "x", TARGETS["extract_over_bare"]))
+    echo(_line("warm-cache speed-up", ex["warm_cache_speedup"], "x", TARGETS["warm_cache_speedup"], "above"))
+
+    st = figures["statistics"] = bench_statistics(500 if quick else 2000, 512, 1000)
+    extract_same = 2 * st["pairs"] / ex["extract_images_per_s"]
+    st["share_of_extraction"] = st["seconds"] / extract_same
+    echo(_line(f"statistics, {st['pairs']} pairs x 512-d, 1000 perms", st["seconds"], "s"))
+    echo(_line("statistics / extraction of the same pairs", st["share_of_extraction"], "", TARGETS["stats_share"]))
+
+    fm = figures["feature_memory"] = bench_feature_memory(5000, 512)
+    echo(_line("5,000 pairs x 512-d features held", fm["arrays_gib"], "GiB", TARGETS["feature_memory_gib"]))
+    if not quick:
+        sm = figures["statistics_memory"] = bench_statistics_memory(20000, 512)
+        echo(_line("statistics peak memory, 20,000 x 512-d", sm["peak_rss_gib"], "GiB", TARGETS["stats_memory_gib"]))
+
+    al = figures["alignment"] = bench_align_step(128, 32, 3 if quick else 5)
+    echo(_line("align step, whole network (ResNet-18, 128 px)", al["whole_network_step_s"], "s"))
+    echo(_line("align step, cached trunk, layer4 trained", al["cached_trunk_step_s"], "s"))
+    echo(_line("cached / whole-network step", al["align_step_ratio"], "", TARGETS["align_step_ratio"]))
+
+    sc = figures["scenes"] = bench_scenes(50 if quick else 200, 128)
+    echo(_line("scene rendering, 128 px", sc["render_pairs_per_s"], "pairs/s", TARGETS["scenes_pairs_per_s"], "above"))
+    echo(_line("scene rendering + PNG writing, 128 px", sc["render_and_write_pairs_per_s"], "pairs/s"))
+
+    if pairs:
+        est = figures["estimate"] = estimate_seconds(pairs, ex, figures["statistics"])
+        echo(f"estimate for {pairs:,} pairs with {spec} at 224 px: extraction {est['extract_s'] / 60:.1f} min, "
+             f"statistics {est['statistics_s'] / 60:.1f} min, total {est['total_s'] / 60:.1f} min")
+    return figures
