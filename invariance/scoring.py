@@ -1,0 +1,513 @@
+"""All invariance metrics on one pair of feature matrices, with breakdowns by factor.
+
+``score_features`` is the ``metrics`` object of the result JSON (DESIGN.md) plus the
+per-factor ``breakdowns``, per-pair drift, a 2-D projection for the report and warnings.
+Every value is a plain Python number, string or list; a metric that cannot be computed
+is ``{"not_computable": reason}`` and no NaN or infinity ever reaches the output.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+from sklearn.decomposition import PCA
+from threadpoolctl import threadpool_limits
+
+from invariance.errors import InvarianceError
+from invariance.metrics import cka as _cka
+from invariance.metrics import domain as _domain
+from invariance.metrics import drift as _drift
+from invariance.metrics import mmd as _mmd
+from invariance.metrics import probe as _probe
+
+# Pairs drawn (seeded) for the 2-D projection in the report: enough to see the two
+# clouds, few enough to keep the JSON and the plot light (common practice).
+PROJECTION_MAX_PAIRS = 500
+
+# Decimals kept in the projection coordinates; the plot cannot show more.
+PROJECTION_DECIMALS = 4
+
+# Two centred rows are rank one, so their CKA is 1 whatever the features: CKA needs 3.
+CKA_MIN_PAIRS = 3
+
+# BLAS/OpenMP threads while scoring. The work is small dense algebra (fits of a few
+# thousand rows, a 1,000 x 512 SVD, one n x n kernel). On a 2-core machine shared with
+# other jobs, threaded runs were 5-30x slower than one thread (PCA SVD 27x, probes 18x,
+# domain classifier 5-11x) and no faster when the cores were free
+# (tests/benchmarks/bench_stats.py prints the ratios), so scoring is single-threaded.
+_THREADS = 1
+
+# Significance level of the plain-language readings (common practice).
+ALPHA = 0.05
+
+
+def _min_pairs(folds):
+    """Pairs needed for the whole score: every metric must be computable."""
+    return max(_domain.MIN_PAIRS_PER_FOLD * folds, _mmd.MIN_PAIRS)
+
+
+def _check_args(folds, seed, permutations):
+    _domain._check_int("folds", folds, 2)
+    _domain._check_int("permutations", permutations, 1)
+    _domain._check_int("seed", seed, 0)
+
+
+def _check_columns(kind, columns, n):
+    if columns is None:
+        return {}
+    if not isinstance(columns, dict):
+        raise InvarianceError(
+            f"{kind} must be a dict of column name to array; got {type(columns).__name__}"
+        )
+    out = {}
+    for name, values in columns.items():
+        values = np.asarray(values)
+        if values.shape != (n,):
+            raise InvarianceError(
+                f"{kind} column {name!r} has shape {values.shape}; it needs one value per "
+                f"pair ({n},): give labels in the same order as the features"
+            )
+        out[str(name)] = values
+    return out
+
+
+def _not_computable(n, need):
+    return {"not_computable": f"only {n} pairs; need {need}"}
+
+
+def _guard(fn, *args, **kwargs):
+    """Run a metric; a degenerate input becomes ``not_computable`` instead of a crash."""
+    try:
+        return fn(*args, **kwargs)
+    except InvarianceError as err:
+        return {"not_computable": str(err)}
+
+
+def _domain_metric(clean, cluttered, seed, folds):
+    n = clean.shape[0]
+    need = _domain.MIN_PAIRS_PER_FOLD * folds
+    if n < need:
+        return _not_computable(n, need)
+    result = _guard(_domain.domain_classifier, clean, cluttered, folds=folds, seed=seed)
+    result.pop("decision", None)
+    return result
+
+
+def _mmd_metric(clean, cluttered, seed, permutations):
+    n = clean.shape[0]
+    if n < _mmd.MIN_PAIRS:
+        return _not_computable(n, _mmd.MIN_PAIRS)
+    return _guard(
+        _mmd.paired_permutation_test, clean, cluttered, permutations=permutations, seed=seed
+    )
+
+
+def _drift_full(clean, cluttered, seed):
+    n = clean.shape[0]
+    if n < _drift.MIN_PAIRS:
+        return _not_computable(n, _drift.MIN_PAIRS)
+    return _guard(_drift.paired_drift, clean, cluttered, seed=seed)
+
+
+def _drift_summary(full):
+    if "not_computable" in full:
+        return full
+    keys = (
+        "relative_drift",
+        "relative_drift_ci",
+        "ci_method",
+        "typical_distance",
+        "pair_retrieval_top1",
+    )
+    return {key: full[key] for key in keys}
+
+
+def _cka_metric(clean, cluttered):
+    if clean.shape[0] < CKA_MIN_PAIRS:
+        return _not_computable(clean.shape[0], CKA_MIN_PAIRS)
+    return _guard(_cka.linear_cka, clean, cluttered)
+
+
+def _metrics(clean, cluttered, tasks, seed, permutations, folds, drift=None):
+    drift = _drift_full(clean, cluttered, seed) if drift is None else drift
+    out = {
+        "domain_classifier": _domain_metric(clean, cluttered, seed, folds),
+        "mmd": _mmd_metric(clean, cluttered, seed, permutations),
+    }
+    if tasks:
+        out["probe"] = _probe.linear_probes(clean, cluttered, tasks, seed=seed)
+    out["paired_drift"] = _drift_summary(drift)
+    out["cka"] = _cka_metric(clean, cluttered)
+    return out
+
+
+def _is_missing(value):
+    text = str(value)
+    return value is None or text == "" or text.lower() == "nan"
+
+
+def _factor_key(value):
+    """A factor value as the breakdown key: 2.0 reads "2", text stays as it is."""
+    if isinstance(value, (float, np.floating)) and float(value).is_integer():
+        return str(int(value))
+    return str(value)
+
+
+def _breakdowns(clean, cluttered, tasks, factors, seed, permutations, folds):
+    out = {}
+    for column, values in factors.items():
+        groups = {}
+        keys = np.array(["" if _is_missing(v) else _factor_key(v) for v in values.tolist()])
+        for value in sorted(set(keys.tolist()) - {""}):
+            idx = np.flatnonzero(keys == value)
+            sub_tasks = {name: labels[idx] for name, labels in tasks.items()}
+            groups[value] = {
+                "pairs": int(idx.size),
+                "metrics": _metrics(
+                    clean[idx], cluttered[idx], sub_tasks, seed, permutations, folds
+                ),
+            }
+        out[column] = groups
+    return out
+
+
+def _projection(clean, cluttered, seed):
+    n = clean.shape[0]
+    indices = np.arange(n)
+    if n > PROJECTION_MAX_PAIRS:
+        rng = np.random.default_rng(seed)
+        indices = np.sort(rng.choice(n, PROJECTION_MAX_PAIRS, replace=False))
+    pooled = np.vstack([clean[indices], cluttered[indices]]).astype(np.float64)
+    if pooled.shape[1] < 2:
+        return {"not_computable": "features have fewer than 2 dimensions"}
+    if np.ptp(pooled, axis=0).max() == 0:
+        return {"not_computable": "all feature vectors are identical"}
+    pca = PCA(n_components=2, svd_solver="full").fit(pooled)
+    coords = np.round(pca.transform(pooled), PROJECTION_DECIMALS)
+    m = indices.size
+    return {
+        "method": "pca",
+        "clean": coords[:m].tolist(),
+        "cluttered": coords[m:].tolist(),
+        "indices": indices.tolist(),
+        "explained_variance_ratio": np.round(
+            pca.explained_variance_ratio_, PROJECTION_DECIMALS
+        ).tolist(),
+    }
+
+
+def _feature_warnings(clean, cluttered):
+    warnings = []
+    # constant over both domains, without stacking a copy of both matrices
+    same = (np.ptp(clean, axis=0) == 0) & (np.ptp(cluttered, axis=0) == 0)
+    constant = int((same & (clean[0] == cluttered[0])).sum())
+    if constant:
+        warnings.append(
+            f"{constant} of {clean.shape[1]} feature columns are constant over all images; "
+            f"they carry no information"
+        )
+    duplicates = clean.shape[0] - np.unique(clean, axis=0).shape[0]
+    if duplicates:
+        warnings.append(
+            f"{duplicates} clean feature rows repeat another pair's row; check that the pairs "
+            f"are different scenes"
+        )
+    if np.array_equal(clean, cluttered):
+        warnings.append("clean and cluttered features are identical for every pair")
+    return warnings
+
+
+def _metric_warnings(metrics):
+    warnings = []
+    domain = metrics["domain_classifier"]
+    if "note" in domain:
+        warnings.append(domain["note"])
+    sampled = (("domain_classifier", "domain classifier"), ("mmd", "MMD permutation test"))
+    for name, label in sampled:
+        method = metrics[name].get("method", "exact")
+        if method != "exact":
+            warnings.append(f"{label} ran on a seeded {method}")
+    for name, value in metrics.items():
+        if isinstance(value, dict) and "not_computable" in value:
+            warnings.append(f"{name} not computable: {value['not_computable']}")
+    return warnings
+
+
+def _plain(value):
+    """Convert numpy scalars and arrays into JSON-ready Python values."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return [_plain(v) for v in value.tolist()]
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        return float(value)
+    return value
+
+
+def _check_finite(value, path="result"):
+    """Raise if any float in a nested dict or list is NaN or infinite (never valid JSON)."""
+    if isinstance(value, dict):
+        for key, item in value.items():
+            _check_finite(item, f"{path}.{key}")
+    elif isinstance(value, list):
+        for i, item in enumerate(value):
+            _check_finite(item, f"{path}[{i}]")
+    elif isinstance(value, float) and not math.isfinite(value):
+        raise RuntimeError(
+            f"non-finite value {value} at {path}; a metric must report not_computable instead"
+        )
+
+
+def score_features(
+    clean,
+    cluttered,
+    *,
+    tasks=None,
+    factors=None,
+    names=None,
+    seed=0,
+    permutations=1000,
+    folds=5,
+):
+    """Every invariance metric on paired clean / cluttered features.
+
+    Parameters
+    ----------
+    clean, cluttered : ndarray of shape (n_pairs, d)
+        Paired features; row i of each is the same scene.
+    tasks : dict of str to ndarray, optional
+        Task labels per pair for the linear probes (``str`` arrays are classes,
+        numeric arrays are regression targets).
+    factors : dict of str to ndarray, optional
+        Clutter descriptions per pair (``factor_*`` and ``level`` columns); every
+        metric is repeated on the pairs that share each value.
+    names : sequence of str, optional
+        A name per pair for the per-pair drift list; default the row index.
+    seed : int, default=0
+        Seed of every split, permutation, bootstrap and subsample.
+    permutations : int, default=1000
+        Permutations of the MMD test.
+    folds : int, default=5
+        Folds of the domain classifier.
+
+    Returns
+    -------
+    dict
+        ``metrics`` (``domain_classifier``, ``mmd``, ``probe`` when tasks are given,
+        ``paired_drift``, ``cka``), ``breakdowns`` ({column: {value: {"pairs", "metrics"}}}),
+        ``pairs`` ([{"name", "drift"}]), ``projection`` (2-D PCA of a seeded subsample of
+        at most 500 pairs, with their ``indices``) and ``warnings``.
+
+    Raises
+    ------
+    InvarianceError
+        Bad shapes, NaN or inf rows, fewer pairs than the metrics need, or label and
+        name lists of the wrong length.
+    """
+    _check_args(folds, seed, permutations)
+    with threadpool_limits(limits=_THREADS):
+        result = _score(clean, cluttered, tasks, factors, names, seed, permutations, folds)
+    result = _plain(result)
+    _check_finite(result)
+    return result
+
+
+def _score(clean, cluttered, tasks, factors, names, seed, permutations, folds):
+    clean, cluttered = _domain._validate_pairs(clean, cluttered, min_pairs=_min_pairs(folds))
+    n = clean.shape[0]
+    tasks = _check_columns("tasks", tasks, n)
+    factors = _check_columns("factors", factors, n)
+    if names is None:
+        names = [str(i) for i in range(n)]
+    elif len(names) != n:
+        raise InvarianceError(
+            f"names has {len(names)} entries for {n} pairs: give one name per pair"
+        )
+    drift = _drift_full(clean, cluttered, seed)
+    metrics = _metrics(clean, cluttered, tasks, seed, permutations, folds, drift=drift)
+    per_pair = drift.get("per_pair")
+    result = {
+        "metrics": metrics,
+        "breakdowns": _breakdowns(clean, cluttered, tasks, factors, seed, permutations, folds),
+        "pairs": [
+            {"name": str(names[i]), "drift": None if per_pair is None else float(per_pair[i])}
+            for i in range(n)
+        ],
+        "projection": _projection(clean, cluttered, seed),
+        "warnings": _feature_warnings(clean, cluttered) + _metric_warnings(metrics),
+    }
+    return result
+
+
+def load_feature_files(clean_path, cluttered_path):
+    """Read paired feature matrices from two ``.npy`` files (no pickles).
+
+    Parameters
+    ----------
+    clean_path, cluttered_path : str or Path
+        ``.npy`` files of shape (n_pairs, d), row i of each the same scene.
+
+    Returns
+    -------
+    clean, cluttered : ndarray of shape (n_pairs, d)
+        As float32 or float64 (integer arrays become float64).
+    """
+    clean = _load_npy(clean_path)
+    cluttered = _load_npy(cluttered_path)
+    if clean.shape != cluttered.shape:
+        raise InvarianceError(
+            f"{clean_path} has shape {clean.shape} but {cluttered_path} has shape "
+            f"{cluttered.shape}: both need one row per pair, in the same order"
+        )
+    return clean, cluttered
+
+
+def _load_npy(path):
+    path = Path(path)
+    if not path.is_file():
+        raise InvarianceError(f"{path}: no such file; give the path of a .npy feature matrix")
+    try:
+        array = np.load(path, allow_pickle=False)
+    except (ValueError, OSError, EOFError) as err:
+        reason = str(err).splitlines()[0] if str(err) else type(err).__name__
+        raise InvarianceError(
+            f"{path}: not a readable numeric .npy array ({reason}); save it with numpy.save"
+        ) from None
+    if not isinstance(array, np.ndarray) or array.ndim != 2:
+        shape = getattr(array, "shape", None)
+        raise InvarianceError(f"{path}: expected a 2-D array (n_pairs, d); got shape {shape}")
+    if array.dtype.kind not in "fiu":
+        raise InvarianceError(f"{path}: expected numbers; got dtype {array.dtype}")
+    if array.dtype.kind != "f":
+        array = array.astype(np.float64)
+    bad = ~np.isfinite(array).all(axis=1)
+    if bad.any():
+        raise InvarianceError(
+            f"{path}: {int(bad.sum())} of {array.shape[0]} rows contain NaN or inf; remove "
+            f"those pairs from both files"
+        )
+    return array
+
+
+def _percent(value):
+    return f"{100 * value:.0f}%"
+
+
+def _describe_domain(m):
+    acc, p = m["accuracy"], m["p_value"]
+    interval = f"[{_percent(m['ci'][0])}, {_percent(m['ci'][1])}]"
+    if p < ALPHA:
+        reading = (
+            f"a linear classifier tells clean from cluttered {_percent(acc)} of the time "
+            f"(chance 50%, p = {p:.2g}): the encoder separates the domains"
+        )
+    else:
+        reading = (
+            f"a linear classifier tells clean from cluttered {_percent(acc)} of the time, "
+            f"not distinguishable from chance (50%, p = {p:.2g}): no evidence the encoder "
+            f"separates the domains"
+        )
+    return ("domain classifier accuracy", _percent(acc), interval, reading)
+
+
+def _describe_mmd(m):
+    p = m["p_value"]
+    if p < ALPHA:
+        reading = (
+            f"the clean and cluttered feature distributions differ (within-pair permutation "
+            f"test, p = {p:.2g})"
+        )
+    else:
+        reading = (
+            f"no detectable difference between clean and cluttered feature distributions "
+            f"(within-pair permutation test, p = {p:.2g})"
+        )
+    return ("MMD^2", f"{m['mmd2']:.3g} (p = {p:.2g})", "", reading)
+
+
+def _describe_drift(m):
+    ci = m["relative_drift_ci"]
+    rows = [
+        (
+            "relative drift",
+            f"{m['relative_drift']:.2f}",
+            f"[{ci[0]:.2f}, {ci[1]:.2f}]",
+            f"clutter moves a scene's feature {_percent(m['relative_drift'])} as far as "
+            f"changing the scene does (0 = invariant, 1 = as far as a different scene)",
+        ),
+        (
+            "pair retrieval top-1",
+            _percent(m["pair_retrieval_top1"]),
+            "",
+            f"{_percent(m['pair_retrieval_top1'])} of cluttered images find their own clean "
+            f"image as the nearest clean feature",
+        ),
+    ]
+    return rows
+
+
+def _describe_cka(value):
+    return (
+        "linear CKA",
+        f"{value:.2f}",
+        "",
+        f"clean and cluttered representations align at {value:.2f} "
+        f"(1 = the same up to rotation and scale, 0 = unrelated)",
+    )
+
+
+def _describe_probe(label, m):
+    name = f"probe {label} ({m['metric']})"
+    value = f"{m['clean']:.2f} -> {m['cluttered']:.2f} (gap {m['gap']:.2f})"
+    reading = (
+        f"a probe trained on clean features scores {m['clean']:.2f} on held-out clean and "
+        f"{m['cluttered']:.2f} on the same scenes cluttered (gap {m['gap']:.2f})"
+    )
+    return (name, value, "", reading)
+
+
+def describe_metrics(metrics):
+    """Plain-language rows for the terminal table.
+
+    Parameters
+    ----------
+    metrics : dict
+        The ``metrics`` object of :func:`score_features`.
+
+    Returns
+    -------
+    list of (name, value, interval, reading) tuples of str
+        One row per metric (two for paired drift, one per probe); ``interval`` is the
+        95% interval where the metric has one, else "". A metric that could not be
+        computed reads "n/a" with its reason.
+    """
+    rows = []
+    single = (
+        ("domain_classifier", "domain classifier accuracy", _describe_domain),
+        ("mmd", "MMD^2", _describe_mmd),
+        ("paired_drift", "relative drift", _describe_drift),
+        ("cka", "linear CKA", _describe_cka),
+    )
+    for key, title, describe in single:
+        if key not in metrics:
+            continue
+        value = metrics[key]
+        if isinstance(value, dict) and "not_computable" in value:
+            rows.append((title, "n/a", "", value["not_computable"]))
+            continue
+        described = describe(value)
+        rows.extend(described if isinstance(described, list) else [described])
+    for label, probe in metrics.get("probe", {}).items():
+        if "not_computable" in probe:
+            rows.append((f"probe {label}", "n/a", "", probe["not_computable"]))
+        else:
+            rows.append(_describe_probe(label, probe))
+    return rows

@@ -1,0 +1,201 @@
+"""score_features: the metrics object, breakdowns, validation, determinism, files."""
+
+import json
+
+import numpy as np
+import pytest
+
+from invariance.errors import InvarianceError
+from invariance.metrics.drift import paired_drift
+from invariance.scoring import (
+    _check_finite,
+    _projection,
+    describe_metrics,
+    load_feature_files,
+    score_features,
+)
+
+
+def _pairs(n=40, d=6, seed=0, shift=0.0):
+    rng = np.random.default_rng(seed)
+    z = rng.standard_normal((n, d))
+    return z + 0.3 * rng.standard_normal((n, d)), z + 0.3 * rng.standard_normal((n, d)) + shift
+
+
+FAST = {"permutations": 99, "folds": 3}
+
+
+@pytest.fixture(scope="module")
+def scored():
+    clean, cluttered = _pairs(n=48, shift=0.5)
+    rng = np.random.default_rng(1)
+    tasks = {
+        "colour": np.where(clean[:, 0] > 0, "red", "blue").astype(object),
+        "size": clean[:, 1].copy(),
+    }
+    factors = {
+        "factor_background": np.array(["wood"] * 40 + ["steel"] * 8, dtype=object),
+        "level": np.repeat([1.0, 2.0], 24),
+    }
+    names = [f"scene_{i:03d}.png" for i in range(48)]
+    result = score_features(
+        clean, cluttered, tasks=tasks, factors=factors, names=names, seed=2, **FAST
+    )
+    return clean, cluttered, tasks, factors, names, result, rng
+
+
+def test_result_has_the_design_keys(scored):
+    *_, result, _ = scored
+    m = result["metrics"]
+    assert {"accuracy", "ci", "proxy_a_distance", "p_value"} <= set(m["domain_classifier"])
+    assert {"mmd2", "p_value", "permutations", "bandwidth"} <= set(m["mmd"])
+    assert {"relative_drift", "relative_drift_ci", "pair_retrieval_top1"} <= set(m["paired_drift"])
+    assert isinstance(m["cka"], float)
+    assert {"kind", "clean", "cluttered", "gap"} <= set(m["probe"]["colour"])
+    assert m["probe"]["size"]["kind"] == "regression"
+    # a shift of 0.5 against noise 0.3 is obvious to every test
+    assert m["domain_classifier"]["p_value"] < 0.01 and m["mmd"]["p_value"] < 0.05
+    json.dumps(result, allow_nan=False)
+
+
+def test_breakdowns_per_factor_value(scored):
+    *_, result, _ = scored
+    background = result["breakdowns"]["factor_background"]
+    assert background["wood"]["pairs"] == 40 and background["steel"]["pairs"] == 8
+    # 8 pairs suffice for 3 folds (6 needed) but not for the MMD test (10 needed)
+    assert background["steel"]["metrics"]["mmd"] == {"not_computable": "only 8 pairs; need 10"}
+    assert "accuracy" in background["steel"]["metrics"]["domain_classifier"]
+    assert set(result["breakdowns"]["level"]) == {"1", "2"}  # 1.0 reads "1"
+    level_one = result["breakdowns"]["level"]["1"]["metrics"]
+    assert level_one["paired_drift"]["relative_drift"] > 0
+
+
+def test_breakdown_equals_scoring_the_subset(scored):
+    clean, cluttered, *_, result, _ = scored
+    wood = result["breakdowns"]["factor_background"]["wood"]["metrics"]
+    alone = score_features(clean[:40], cluttered[:40], seed=2, **FAST)["metrics"]
+    assert wood["domain_classifier"] == alone["domain_classifier"]
+    assert wood["mmd"] == alone["mmd"] and wood["cka"] == alone["cka"]
+
+
+def test_pairs_carry_names_and_drift(scored):
+    clean, cluttered, _, _, names, result, _ = scored
+    per_pair = paired_drift(clean, cluttered, seed=2)["per_pair"]
+    assert [p["name"] for p in result["pairs"]] == names
+    np.testing.assert_allclose([p["drift"] for p in result["pairs"]], per_pair)
+
+
+def test_same_inputs_and_seed_give_identical_json():
+    clean, cluttered = _pairs(n=30, seed=3, shift=0.2)
+    tasks = {"t": clean[:, 0].copy()}
+    a = score_features(clean, cluttered, tasks=tasks, seed=7, **FAST)
+    b = score_features(clean.copy(), cluttered.copy(), tasks=tasks, seed=7, **FAST)
+    assert json.dumps(a, sort_keys=True) == json.dumps(b, sort_keys=True)
+
+
+def test_projection_is_pca_of_both_domains():
+    # Reference: numpy eigenvalues of the pooled covariance (PCA explained variance).
+    clean, cluttered = _pairs(n=600, d=5, seed=4, shift=1.0)
+    proj = _projection(clean, cluttered, seed=0)
+    assert len(proj["clean"]) == len(proj["cluttered"]) == len(proj["indices"]) == 500
+    pooled = np.vstack([clean[proj["indices"]], cluttered[proj["indices"]]])
+    eig = np.sort(np.linalg.eigvalsh(np.cov(pooled.T)))[::-1]
+    expected = np.round(eig[:2] / eig.sum(), 4)
+    np.testing.assert_allclose(proj["explained_variance_ratio"], expected, atol=1e-4)
+    assert all(round(v, 4) == v for v in proj["clean"][0])
+
+
+def test_constant_features_never_crash_or_emit_nan():
+    clean = np.ones((20, 4))
+    result = score_features(clean, clean.copy(), **FAST)
+    assert "not_computable" in result["metrics"]["mmd"]
+    assert "not_computable" in result["metrics"]["cka"]
+    assert "not_computable" in result["projection"]
+    assert any("constant" in w for w in result["warnings"])
+    json.dumps(result, allow_nan=False)
+
+
+def test_duplicate_rows_warn():
+    clean, cluttered = _pairs(n=20, seed=5)
+    clean[5] = clean[4]
+    result = score_features(clean, cluttered, **FAST)
+    assert any("repeat" in w for w in result["warnings"])
+
+
+def test_check_finite_finds_nested_nan():
+    with pytest.raises(RuntimeError, match=r"result.metrics.mmd.p_value"):
+        _check_finite({"metrics": {"mmd": {"p_value": float("nan")}}})
+    with pytest.raises(RuntimeError, match=r"\[1\]"):
+        _check_finite({"ci": [0.1, float("inf")]})
+
+
+@pytest.mark.parametrize(
+    "clean, cluttered, match",
+    [
+        (np.zeros(20), np.zeros(20), "2-D"),
+        (np.zeros((20, 3)), np.zeros((21, 3)), r"\(20, 3\).*\(21, 3\)"),
+        (np.zeros((5, 3)), np.zeros((5, 3)), "need at least 10"),
+    ],
+)
+def test_bad_inputs_are_clear_errors(clean, cluttered, match):
+    with pytest.raises(InvarianceError, match=match):
+        score_features(clean, cluttered)
+
+
+def test_nan_rows_are_counted():
+    clean, cluttered = _pairs(n=20, seed=6)
+    clean[[1, 2, 3], 2] = np.inf
+    with pytest.raises(InvarianceError, match="3 of 20 rows"):
+        score_features(clean, cluttered)
+
+
+def test_wrong_names_and_label_lengths():
+    clean, cluttered = _pairs(n=20, seed=7)
+    with pytest.raises(InvarianceError, match="names"):
+        score_features(clean, cluttered, names=["a"])
+    with pytest.raises(InvarianceError, match="factor_x"):
+        score_features(clean, cluttered, factors={"factor_x": np.zeros(3)})
+
+
+def test_load_feature_files(tmp_path):
+    clean, cluttered = _pairs(n=12, seed=8)
+    np.save(tmp_path / "c.npy", clean.astype(np.float32))
+    np.save(tmp_path / "k.npy", cluttered.astype(np.float32))
+    a, b = load_feature_files(tmp_path / "c.npy", tmp_path / "k.npy")
+    assert a.dtype == np.float32 and np.array_equal(b, cluttered.astype(np.float32))
+    np.save(tmp_path / "short.npy", cluttered[:5])
+    with pytest.raises(InvarianceError, match="c.npy has shape .*short.npy"):
+        load_feature_files(tmp_path / "c.npy", tmp_path / "short.npy")
+    with pytest.raises(InvarianceError, match="missing.npy: no such file"):
+        load_feature_files(tmp_path / "missing.npy", tmp_path / "k.npy")
+    np.save(tmp_path / "obj.npy", np.array([{"a": 1}], dtype=object), allow_pickle=True)
+    with pytest.raises(InvarianceError, match="obj.npy: not a readable"):
+        load_feature_files(tmp_path / "obj.npy", tmp_path / "k.npy")
+    np.save(tmp_path / "flat.npy", np.zeros(7))
+    with pytest.raises(InvarianceError, match="flat.npy: expected a 2-D"):
+        load_feature_files(tmp_path / "flat.npy", tmp_path / "k.npy")
+    bad = clean.copy()
+    bad[0, 0] = np.nan
+    np.save(tmp_path / "nan.npy", bad)
+    with pytest.raises(InvarianceError, match="nan.npy: 1 of 12 rows"):
+        load_feature_files(tmp_path / "nan.npy", tmp_path / "k.npy")
+    (tmp_path / "text.npy").write_text("not numpy")
+    with pytest.raises(InvarianceError, match="text.npy"):
+        load_feature_files(tmp_path / "text.npy", tmp_path / "k.npy")
+
+
+def test_readings_say_what_the_numbers_mean(scored):
+    *_, result, _ = scored
+    rows = describe_metrics(result["metrics"])
+    names = [row[0] for row in rows]
+    assert names[:2] == ["domain classifier accuracy", "MMD^2"]
+    domain = rows[0]
+    assert "separates the domains" in domain[3] and domain[1].endswith("%")
+    assert any(name.startswith("probe colour") for name in names)
+    clean, _ = _pairs(n=20, seed=9)
+    same = describe_metrics(score_features(clean, clean.copy(), **FAST)["metrics"])
+    assert "no evidence" in same[0][3]
+    assert "no detectable difference" in same[1][3]
+    flat = score_features(np.ones((20, 3)), np.ones((20, 3)), **FAST)
+    constant = describe_metrics(flat["metrics"])
+    assert ("linear CKA", "n/a") == constant[-1][:2]
