@@ -236,7 +236,7 @@ def _write_outputs(result, *, json_path=None, report_path=None, drift_csv=None):
         atomic_write_json(json_path, result)
         click.echo(f"result JSON: {json_path}")
     if drift_csv:
-        lines = ["file,relative_drift"] + [f"{_csv_cell(p['name'])},{p['drift']:.6f}" for p in result.get("pairs", [])]
+        lines = ["file,relative_drift"] + [f"{_csv_cell(p['name'])},{'' if p['drift'] is None else format(p['drift'], '.6f')}" for p in result.get("pairs", [])]
         atomic_write_text(drift_csv, "\n".join(lines) + "\n")
         click.echo(f"per-pair drift: {drift_csv}")
     if report_path:
