@@ -1,0 +1,901 @@
+"""Adversarial alignment of an encoder's last stage(s): clutter-invariant features on a CPU.
+
+The method is domain-adversarial training (DANN): a small domain discriminator learns to
+tell clean from cluttered features, and a gradient reversal layer between the features
+and the discriminator turns the encoder's update into one that makes the two domains
+hard to tell apart (Ganin & Lempitsky, "Unsupervised domain adaptation by
+backpropagation", ICML 2015; Ganin et al., "Domain-adversarial training of neural
+networks", JMLR 17 (2016) 59:1-35). Two further losses keep what a downstream policy
+relies on: an anchor that keeps clean-image features close to the original encoder's and,
+where labels exist, a linear task head on clean images. An optional paired term pulls a
+cluttered feature towards its own scene's clean feature.
+
+Only the stages from ``train_from`` onwards are trained; the frozen stages before it run
+once over every alignment image and their activations are cached, so a step costs only
+the trained tail and the discriminator. Held-out pairs are never trained on (nor used
+for early stopping); the before/after metrics are measured on them.
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import torch
+from torch import nn
+from torch.nn import functional as F
+
+from .errors import InvarianceError
+
+# DANN schedules, Ganin et al., JMLR 2016, section 5.2.2.
+DANN_GAMMA = 10.0
+DANN_LR_ALPHA = 10.0
+DANN_LR_BETA = 0.75
+DISCRIMINATOR_HIDDEN = 64  # one hidden layer suffices against a pooled vector (common practice)
+
+# The anchor is measured relative to the spread of the original clean features, so a
+# weight of 1 makes "clean features moved by one typical spread" cost about as much as a
+# confused discriminator's loss (log 2 ~ 0.69): the natural unit, not a tuned value. On the
+# workbench demo it kept every clean probe within 2% (tests/test_align.py, acceptance).
+DEFAULT_ANCHOR_WEIGHT = 1.0
+DEFAULT_TASK_WEIGHT = 1.0
+# Small but on: every data set here is paired by construction, and the adversary alone
+# aligns the two distributions, not each scene with its own twin. On the workbench demo
+# (300 pairs, level 3, clean-only CNN, block3) the adversary alone (lr 1e-4) left drift at
+# 1.14 -> 1.12 in 300 steps; 0.1 lowered it (0.98 in 150 steps, 0.66 in 1500) while the
+# anchor kept clean probes in place, and 1.0 let the paired term swamp the anchor (clean
+# probes fell by up to 5%).
+DEFAULT_PAIRED_WEIGHT = 0.1
+# Adam (Kingma & Ba, ICLR 2015) at its usual 1e-3, annealed by the DANN schedule; on the
+# workbench demo 1e-4 left the tail nearly unchanged in 300 steps.
+DEFAULT_LEARNING_RATE = 1e-3
+DEFAULT_GUARD_MARGIN = 0.05
+
+RIDGE_ALPHAS = tuple(np.logspace(-2, 5, 15))  # penalties searched for regression heads (common practice)
+VALIDATION_FRACTION = 0.25  # of the alignment pairs, for early stopping (common practice)
+EVAL_EVERY = 20  # steps between validation checks
+_MIN_HELD_OUT = 10  # two pairs per fold of the 5-fold held-out scoring
+_MIN_VALIDATION = 8
+_MIN_TRAIN = 16
+_SPLIT_RTOL = 1e-4  # float32 re-association of the same operations stays well inside this
+_SPLIT_CHECK_IMAGES = 4
+
+
+class AlignmentInterrupted(KeyboardInterrupt):
+    """Ctrl-C during alignment: the best state so far was saved to ``checkpoint``."""
+
+    def __init__(self, checkpoint: Path, steps_run: int):
+        super().__init__(f"alignment interrupted after {steps_run} steps; best state so far saved to {checkpoint}")
+        self.checkpoint = Path(checkpoint)
+        self.steps_run = steps_run
+
+
+# ---------------------------------------------------------------- gradient reversal
+
+
+class _ReverseGradient(torch.autograd.Function):
+    @staticmethod
+    def forward(ctx, x, lambda_):
+        ctx.lambda_ = float(lambda_)
+        return x.view_as(x)
+
+    @staticmethod
+    def backward(ctx, grad_output):
+        return -ctx.lambda_ * grad_output, None
+
+
+def gradient_reversal(x: torch.Tensor, lambda_: float = 1.0) -> torch.Tensor:
+    """Identity in the forward pass; multiplies the gradient by ``-lambda_`` backwards.
+
+    Ganin & Lempitsky, ICML 2015, section 3.2 (the "gradient reversal layer");
+    Ganin et al., JMLR 2016, eq. 16-17.
+    """
+    return _ReverseGradient.apply(x, lambda_)
+
+
+class GradientReversal(nn.Module):
+    """Module form of :func:`gradient_reversal`; set ``lambda_`` as training progresses."""
+
+    def __init__(self, lambda_: float = 1.0):
+        super().__init__()
+        self.lambda_ = float(lambda_)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return gradient_reversal(x, self.lambda_)
+
+    def extra_repr(self) -> str:
+        return f"lambda_={self.lambda_}"
+
+
+def _check_progress(p) -> float:
+    if isinstance(p, bool) or not isinstance(p, (int, float, np.floating, np.integer)) or not 0.0 <= p <= 1.0:
+        raise InvarianceError(f"p={p!r} is not valid; training progress is a number in [0, 1]")
+    return float(p)
+
+
+def dann_lambda(p: float, gamma: float = DANN_GAMMA) -> float:
+    """Adaptation weight ``2 / (1 + exp(-gamma p)) - 1`` at training progress ``p``.
+
+    Starts at 0 so the discriminator's early noise does not disturb the encoder, and
+    approaches 1 (Ganin et al., JMLR 2016, section 5.2.2, gamma = 10).
+    """
+    p = _check_progress(p)
+    return 2.0 / (1.0 + math.exp(-gamma * p)) - 1.0
+
+
+def dann_learning_rate(p: float, lr0: float = 0.01, alpha: float = DANN_LR_ALPHA, beta: float = DANN_LR_BETA) -> float:
+    """Annealed learning rate ``lr0 / (1 + alpha p) ** beta`` (Ganin et al., JMLR 2016, sec. 5.2.2)."""
+    p = _check_progress(p)
+    return lr0 / (1.0 + alpha * p) ** beta
+
+
+# ---------------------------------------------------------------- pair splits
+
+
+def _split_sizes(n_pairs: int, held_out_fraction: float) -> tuple[int, int, int]:
+    held_out = int(round(n_pairs * held_out_fraction))
+    val = _validation_size(n_pairs - held_out)
+    return held_out, val, n_pairs - held_out - val
+
+
+def _validation_size(n_align: int) -> int:
+    return max(_MIN_VALIDATION, int(round(n_align * VALIDATION_FRACTION)))
+
+
+def _minimum_pairs(held_out_fraction: float) -> int:
+    n = 1
+    while True:
+        held_out, val, train = _split_sizes(n, held_out_fraction)
+        if held_out >= _MIN_HELD_OUT and val >= _MIN_VALIDATION and train >= _MIN_TRAIN:
+            return n
+        n += 1
+
+
+def _check_fraction(held_out_fraction) -> float:
+    if isinstance(held_out_fraction, bool) or not isinstance(held_out_fraction, (int, float)) or not (
+        0.05 <= held_out_fraction <= 0.8
+    ):
+        raise InvarianceError(
+            f"held_out_fraction={held_out_fraction!r} is not valid; pass a number between 0.05 and 0.8"
+        )
+    return float(held_out_fraction)
+
+
+def split_pairs(n_pairs: int, *, held_out_fraction: float = 0.3, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
+    """Split pair indices into alignment pairs and held-out pairs, seeded.
+
+    Splits are over pairs, so both views of a scene land on the same side (a scene split
+    across sides would let the held-out score reward memorised scenes).
+
+    Parameters
+    ----------
+    n_pairs : int
+        Number of pairs in the data set.
+    held_out_fraction : float, default=0.3
+        Share of pairs kept out of training to measure before/after.
+    seed : int, default=0
+
+    Returns
+    -------
+    align_idx, held_out_idx : ndarray of int
+        Sorted, disjoint, covering ``range(n_pairs)``.
+    """
+    held_out_fraction = _check_fraction(held_out_fraction)
+    minimum = _minimum_pairs(held_out_fraction)
+    if isinstance(n_pairs, bool) or not isinstance(n_pairs, (int, np.integer)) or n_pairs < minimum:
+        raise InvarianceError(
+            f"alignment needs at least {minimum} pairs with held_out_fraction={held_out_fraction} "
+            f"(found {n_pairs}); add pairs to the data set (invariance scenes OUT --pairs N makes more)"
+        )
+    order = np.random.default_rng(seed).permutation(int(n_pairs))
+    held_out, _, _ = _split_sizes(int(n_pairs), held_out_fraction)
+    return np.sort(order[held_out:]), np.sort(order[:held_out])
+
+
+def validation_slice(align_idx, *, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
+    """Split alignment pairs into training pairs and a validation slice for early stopping.
+
+    Returns ``(train_idx, val_idx)``, sorted subsets of ``align_idx``; the slice is
+    :data:`VALIDATION_FRACTION` of the pairs (at least 8).
+    """
+    align_idx = np.asarray(align_idx, dtype=int)
+    n_val = _validation_size(len(align_idx))
+    if len(align_idx) - n_val < _MIN_TRAIN:
+        raise InvarianceError(
+            f"{len(align_idx)} alignment pairs are too few; at least {_MIN_TRAIN + _MIN_VALIDATION} are needed"
+        )
+    # A seed stream separate from split_pairs', so the slice is not a prefix of that order.
+    order = np.random.default_rng([seed, 1]).permutation(len(align_idx))
+    return np.sort(align_idx[order[n_val:]]), np.sort(align_idx[order[:n_val]])
+
+
+# ---------------------------------------------------------------- trunk / tail split
+
+
+def _first_leaf(module: nn.Module) -> nn.Module:
+    return next((m for m in module.modules() if not list(m.children())), module)
+
+
+class _Chain(nn.Module):
+    """Runs stages in order, flattening before a linear stage as torchvision's forward does."""
+
+    def __init__(self, stages: list[nn.Module], flatten_end: bool):
+        super().__init__()
+        self.stages = nn.ModuleList(stages)  # the encoder's own modules, shared not copied
+        self.flatten_end = flatten_end
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        for stage in self.stages:
+            if x.ndim > 2 and isinstance(_first_leaf(stage), nn.Linear):
+                x = torch.flatten(x, 1)
+            x = stage(x)
+        if self.flatten_end and x.ndim > 2:
+            x = torch.flatten(x, 1)
+        return x
+
+
+def _children_listing(module: nn.Module) -> str:
+    return ", ".join(name for name, _ in module.named_children()) or "(none)"
+
+
+def _default_node(module: nn.Module) -> str:
+    with_params = [name for name, child in module.named_children() if any(True for _ in child.parameters())]
+    if not with_params:
+        raise InvarianceError("the encoder has no top-level stage with parameters; nothing can be aligned")
+    return with_params[-1]
+
+
+def split_module(module: nn.Module, train_from: str | None, example: torch.Tensor) -> tuple[nn.Module, nn.Module, str]:
+    """Split ``module`` into a frozen trunk and a trainable tail at a top-level child.
+
+    The split is checked on ``example``: ``tail(trunk(x))`` must equal ``module(x)``,
+    otherwise the encoder's forward is not the plain sequence of its children and the
+    split would train something else than the encoder.
+
+    Returns
+    -------
+    trunk, tail : nn.Module
+        Share the parameters of ``module`` (training the tail trains ``module``).
+    node : str
+        The child the tail starts at (the default is the last child with parameters).
+    """
+    children = list(module.named_children())
+    names = [name for name, _ in children]
+    node = _default_node(module) if train_from is None else train_from
+    if node not in names:
+        raise InvarianceError(
+            f"--train-from {node}: not a top-level stage of this encoder; pass one of: {_children_listing(module)}"
+        )
+    cut = names.index(node)
+    trunk = _Chain([m for _, m in children[:cut]], flatten_end=False)
+    tail = _Chain([m for _, m in children[cut:]], flatten_end=True)
+    if not any(True for _ in tail.parameters()):
+        raise InvarianceError(
+            f"--train-from {node}: no trainable parameters from there on; pick an earlier stage of: "
+            f"{_children_listing(module)}"
+        )
+    _verify_split(module, trunk, tail, node, example)
+    return trunk, tail, node
+
+
+def _verify_split(module, trunk, tail, node, example) -> None:
+    was_training = module.training
+    module.eval()
+    try:
+        with torch.no_grad():
+            reference = module(example)
+            try:
+                rebuilt = tail(trunk(example))
+            except Exception as exc:  # any failure means the children are not the forward
+                rebuilt = exc
+    finally:
+        module.train(was_training)
+    if not isinstance(reference, torch.Tensor) or reference.ndim != 2:
+        raise InvarianceError(
+            "the encoder's output is not a pooled (N, D) feature matrix; alignment needs one"
+        )
+    ok = isinstance(rebuilt, torch.Tensor) and rebuilt.shape == reference.shape
+    if ok:
+        scale = reference.abs().max().clamp_min(1e-6)
+        ok = bool(((rebuilt - reference).abs().max() / scale) <= _SPLIT_RTOL)
+    if not ok:
+        raise InvarianceError(
+            f"--train-from {node}: this encoder cannot be split there (its forward is not the plain "
+            f"sequence of its top-level stages: {_children_listing(module)}); pick another stage or encoder"
+        )
+
+
+# ---------------------------------------------------------------- cached trunk activations
+
+
+def _preprocessed(paths, encoder) -> torch.Tensor:
+    from .data import load_rgb
+
+    return torch.stack([encoder.preprocess(load_rgb(p)) for p in paths])
+
+
+@torch.no_grad()
+def _trunk_activations(paths, encoder, trunk, batch_size) -> torch.Tensor:
+    # Run once per image: the trunk is frozen, so every step can reuse these.
+    chunks = []
+    for start in range(0, len(paths), batch_size):
+        x = _preprocessed(paths[start : start + batch_size], encoder).to(encoder.device)
+        chunks.append(trunk(x))
+    return torch.cat(chunks)
+
+
+@torch.no_grad()
+def _features(tail, activations, batch_size=256) -> torch.Tensor:
+    return torch.cat([tail(activations[i : i + batch_size]) for i in range(0, len(activations), batch_size)])
+
+
+# ---------------------------------------------------------------- task heads
+
+
+def _standardiser(f0_train: np.ndarray) -> tuple[np.ndarray, float]:
+    """Per-feature mean and one global spread for the task heads' input.
+
+    One spread for all features (not one per feature, as StandardScaler would) keeps a
+    nearly constant feature from being amplified into a huge head weight when alignment
+    later moves it (common practice for warm-started linear heads).
+    """
+    mean = f0_train.mean(axis=0)
+    spread = float(np.sqrt(((f0_train - mean) ** 2).mean())) or 1.0
+    return mean, spread
+
+
+def _check_labels(pairs) -> dict:
+    if pairs.labels is None or not pairs.labels.tasks:
+        return {}
+    for name, values in pairs.labels.tasks.items():
+        if len(values) != len(pairs):
+            raise InvarianceError(
+                f"labels.csv: column {name!r} has {len(values)} rows for {len(pairs)} pairs; "
+                "give one label row per pair"
+            )
+    return pairs.labels.tasks
+
+
+def _classification_task(name, values, train_pos, z_train):
+    from sklearn.linear_model import LogisticRegression
+
+    classes = np.unique(values[train_pos])
+    if len(classes) < 2:
+        return None
+    lookup = {c: i for i, c in enumerate(classes)}
+    target = torch.tensor([lookup.get(v, -100) for v in values], dtype=torch.long)  # -100: ignored by CE
+    model = LogisticRegression(max_iter=1000).fit(z_train, values[train_pos])
+    coef, bias = model.coef_, model.intercept_
+    if len(classes) == 2:  # sklearn's single binary row becomes logits (0, z)
+        coef, bias = np.vstack([np.zeros_like(coef), coef]), np.concatenate([[0.0], bias])
+    return {"name": name, "kind": "classification", "target": target, "mask": target >= 0, "init": (coef, bias)}
+
+
+def _regression_task(name, values, train_pos, z_train):
+    from sklearn.linear_model import RidgeCV
+
+    values = np.asarray(values, dtype=np.float64)
+    finite = np.isfinite(values)
+    train_ok = train_pos[finite[train_pos]]
+    if len(train_ok) < 2 or np.std(values[train_ok]) == 0:
+        return None
+    # Standardised targets so each regression weighs like a classification loss.
+    mean, std = values[train_ok].mean(), values[train_ok].std()
+    target = torch.tensor(np.where(finite, (values - mean) / std, 0.0), dtype=torch.float32)
+    # Penalty by leave-one-out cross-validation: a label the features do not predict gets a
+    # near-constant head instead of an over-fitted one whose loss explodes once features move.
+    model = RidgeCV(alphas=RIDGE_ALPHAS).fit(z_train[finite[train_pos]], target.numpy()[train_ok])
+    coef, bias = np.atleast_2d(model.coef_), np.atleast_1d(model.intercept_)
+    return {"name": name, "kind": "regression", "target": target, "mask": torch.from_numpy(finite), "init": (coef, bias)}
+
+
+def _build_tasks(tasks, kinds, train_pos, z_train) -> list[dict]:
+    """Task heads warm-started on the original features, so their loss starts at its optimum.
+
+    ``z_train`` are the training pairs' original clean features after :func:`_standardiser`.
+    """
+    built = []
+    for name, values in tasks.items():
+        maker = _regression_task if kinds.get(name) == "regression" else _classification_task
+        task = maker(name, np.asarray(values), train_pos, z_train)
+        if task is None:
+            continue
+        coef, bias = task.pop("init")
+        head = nn.Linear(coef.shape[1], coef.shape[0])
+        with torch.no_grad():
+            head.weight.copy_(torch.as_tensor(coef, dtype=torch.float32))
+            head.bias.copy_(torch.as_tensor(bias, dtype=torch.float32))
+        task["head"] = head
+        built.append(task)
+    return built
+
+
+def _task_loss(tasks, features, positions) -> torch.Tensor:
+    total = features.new_zeros(())
+    for task in tasks:
+        mask = task["mask"][positions]
+        if not bool(mask.any()):
+            continue
+        out = task["head"](features[mask])
+        target = task["target"][positions][mask]
+        if task["kind"] == "classification":
+            total = total + F.cross_entropy(out, target)
+        else:
+            total = total + F.mse_loss(out.squeeze(1), target)
+    return total
+
+
+# ---------------------------------------------------------------- validation
+
+
+def _domain_accuracy(clean: np.ndarray, cluttered: np.ndarray) -> float:
+    """Grouped 3-fold accuracy of a fresh logistic-regression domain classifier."""
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.model_selection import GroupKFold, cross_val_score
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+
+    n = len(clean)
+    X = np.vstack([clean, cluttered])
+    y = np.r_[np.zeros(n), np.ones(n)]
+    groups = np.r_[np.arange(n), np.arange(n)]  # a scene's two views stay in one fold
+    model = make_pipeline(StandardScaler(), LogisticRegression(max_iter=1000))
+    return float(cross_val_score(model, X, y, groups=groups, cv=GroupKFold(n_splits=3)).mean())
+
+
+def _relative_drift(clean: np.ndarray, cluttered: np.ndarray) -> float:
+    """Mean paired cosine drift over the typical clean-scene distance (DESIGN.md, paired drift)."""
+    from .metrics.drift import paired_drift
+
+    drift = paired_drift(clean, cluttered, resamples=100)  # the interval is not used here
+    return float(drift.get("relative_drift", math.inf))
+
+
+def _probe_scores(tasks, f_train, f_val, train_pos, val_pos) -> dict:
+    """Clean probe per task: fit on training pairs, score on the validation slice."""
+    from sklearn.linear_model import LogisticRegression, Ridge
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+
+    scores = {}
+    for task in tasks:
+        tr, va = task["mask"][train_pos].numpy(), task["mask"][val_pos].numpy()
+        y_tr, y_va = task["target"][train_pos].numpy()[tr], task["target"][val_pos].numpy()[va]
+        if not va.any():
+            continue
+        learner = LogisticRegression(max_iter=1000) if task["kind"] == "classification" else Ridge(alpha=1.0)
+        model = make_pipeline(StandardScaler(), learner).fit(f_train[tr], y_tr)
+        scores[task["name"]] = float(model.score(f_val[va], y_va))  # accuracy or R^2
+    return scores
+
+
+def _allowed_fall(start: float, kind: str, margin: float, n_val: int) -> float:
+    fall = margin * abs(start)
+    if kind == "classification":
+        # Only a fall the slice can tell from sampling noise: 1.96 standard errors of a
+        # difference of two accuracies on n_val images (two-proportion z, common practice).
+        fall = max(fall, 1.96 * math.sqrt(2.0 * start * (1.0 - start) / n_val))
+    return fall
+
+
+def _guard_failure(start: dict, now: dict, margin: float, kinds: dict, n_val: int) -> str | None:
+    """Why training must stop, or None: a clean probe fell more than allowed below its start.
+
+    A regression probe that started at R^2 <= 0 carries no information worth guarding.
+    """
+    for name, s0 in start.items():
+        if kinds[name] == "regression" and s0 <= 0:
+            continue
+        if name in now and s0 - now[name] > _allowed_fall(s0, kinds[name], margin, n_val):
+            return (
+                f"guard: clean probe {name!r} fell from {s0:.3f} to {now[name]:.3f} on the validation "
+                f"slice (more than {margin:.0%} below its start and beyond sampling noise)"
+            )
+    return None
+
+
+# ---------------------------------------------------------------- training loop
+
+
+class _Run:
+    """Everything one alignment run trains on: cached activations, frozen targets, models."""
+
+    def __init__(self, tail, act_clean, act_cluttered, train_pos, val_pos, tasks, head_input, seed):
+        self.tail, self.act_clean, self.act_cluttered = tail, act_clean, act_cluttered
+        self.train_pos, self.val_pos, self.tasks = train_pos, val_pos, tasks
+        self.head_input = head_input  # (mean, spread) that standardise features for the heads
+        self.f0_clean = _features(tail, act_clean)
+        # Anchor and paired losses are relative to the spread of the original clean features,
+        # so the weights mean the same for any encoder's feature scale.
+        self.scale = self.f0_clean[train_pos].var(dim=0).mean().clamp_min(1e-12)
+        torch.manual_seed(seed)
+        dim = self.f0_clean.shape[1]
+        self.discriminator = nn.Sequential(
+            nn.Linear(dim, DISCRIMINATOR_HIDDEN), nn.ReLU(), nn.Linear(DISCRIMINATOR_HIDDEN, 1)
+        ).to(self.f0_clean.device)
+        for task in tasks:
+            task["head"].to(self.f0_clean.device)
+        self.rng = np.random.default_rng([seed, 2])
+        self._queue = np.empty(0, dtype=int)
+
+    def parameters(self) -> list[torch.nn.Parameter]:
+        params = [p for p in self.tail.parameters() if p.requires_grad]
+        params += list(self.discriminator.parameters())
+        return params + [p for t in self.tasks for p in t["head"].parameters()]
+
+    def next_batch(self, batch_size) -> np.ndarray:
+        """Positions (into the alignment arrays) of the next batch: epochs of seeded shuffles."""
+        if len(self._queue) < batch_size:
+            self._queue = np.concatenate([self._queue, self.rng.permutation(self.train_pos)])
+        batch, self._queue = self._queue[:batch_size], self._queue[batch_size:]
+        return batch
+
+    def losses(self, batch, lambda_, weights) -> dict:
+        f_clean = self.tail(self.act_clean[batch])
+        f_clut = self.tail(self.act_cluttered[batch])
+        feats = torch.cat([f_clean, f_clut])
+        domain = torch.cat([torch.zeros(len(batch)), torch.ones(len(batch))]).to(feats.device)
+        logits = self.discriminator(gradient_reversal(feats, lambda_)).squeeze(1)
+        parts = {
+            "domain": F.binary_cross_entropy_with_logits(logits, domain),
+            "anchor": ((f_clean - self.f0_clean[batch]) ** 2).mean() / self.scale,
+            "task": _task_loss(self.tasks, (f_clean - self.head_input[0]) / self.head_input[1], torch.as_tensor(batch)),
+            "paired": ((f_clut - f_clean.detach()) ** 2).mean() / self.scale,
+        }
+        parts["total"] = (
+            parts["domain"]
+            + weights["anchor"] * parts["anchor"]
+            + weights["task"] * parts["task"]
+            + weights["paired"] * parts["paired"]
+        )
+        parts["discriminator_accuracy"] = ((logits > 0).float() == domain).float().mean()
+        return parts
+
+    def validate(self) -> dict:
+        f_clean = _features(self.tail, self.act_clean).cpu().numpy()
+        f_clut = _features(self.tail, self.act_cluttered[self.val_pos]).cpu().numpy()
+        return {
+            "domain_accuracy": _domain_accuracy(f_clean[self.val_pos], f_clut),
+            "drift": _relative_drift(f_clean[self.val_pos], f_clut),
+            "probes": _probe_scores(self.tasks, f_clean[self.train_pos], f_clean[self.val_pos],
+                                    self.train_pos, self.val_pos),
+        }
+
+
+def _empty_curves() -> dict:
+    keys = ["step", "discriminator_accuracy", "loss_total", "loss_domain", "loss_anchor", "loss_task",
+            "loss_paired", "lambda", "learning_rate", "val_domain_accuracy", "val_relative_drift", "val_clean_probe"]
+    return {k: [] for k in keys}
+
+
+def _record(curves, step, means, lambda_, lr, val) -> None:
+    curves["step"].append(int(step))
+    curves["discriminator_accuracy"].append(round(means["discriminator_accuracy"], 6))
+    for key in ("total", "domain", "anchor", "task", "paired"):
+        curves[f"loss_{key}"].append(round(means[key], 6))
+    curves["lambda"].append(round(lambda_, 6))
+    curves["learning_rate"].append(float(f"{lr:.6g}"))
+    curves["val_domain_accuracy"].append(round(val["domain_accuracy"], 6))
+    curves["val_relative_drift"].append(round(val["drift"], 6) if math.isfinite(val["drift"]) else None)
+    probes = val["probes"]
+    curves["val_clean_probe"].append(round(float(np.mean(list(probes.values()))), 6) if probes else None)
+
+
+def _report(progress, curves, steps) -> None:
+    if not progress:
+        return
+    row = {k: v[-1] for k, v in curves.items()}
+    if callable(progress):
+        progress(row)
+        return
+    probe = "n/a" if row["val_clean_probe"] is None else f"{row['val_clean_probe']:.3f}"
+    drift = "n/a" if row["val_relative_drift"] is None else f"{row['val_relative_drift']:.3f}"
+    print(
+        f"align step {row['step']}/{steps}: discriminator acc {row['discriminator_accuracy']:.3f}, "
+        f"loss {row['loss_total']:.4f} (domain {row['loss_domain']:.4f}, anchor {row['loss_anchor']:.4f}, "
+        f"task {row['loss_task']:.4f}), lambda {row['lambda']:.3f}, "
+        f"val domain acc {row['val_domain_accuracy']:.3f}, val drift {drift}, "
+        f"val clean probe {probe}",
+        file=sys.stderr,
+        flush=True,
+    )
+
+
+def _snapshot(module: nn.Module) -> dict:
+    return {k: v.detach().clone() for k, v in module.state_dict().items()}
+
+
+def _train(run: _Run, *, steps, minutes, batch_size, lr0, weights, guard_margin, progress, batch_callback):
+    """The DANN loop with validation every EVAL_EVERY steps; returns (best state, info)."""
+    optimizer = torch.optim.Adam(run.parameters(), lr=lr0)
+    run.tail.eval()  # BN keeps its running statistics; see align_encoder's notes
+    curves = _empty_curves()
+    start_time = time.perf_counter()
+    deadline = None if minutes is None else start_time + 60.0 * minutes
+
+    with torch.no_grad():
+        first = run.losses(run.train_pos[:batch_size], 0.0, weights)
+    val = run.validate()
+    probes0 = val["probes"]
+    _record(curves, 0, {k: float(v) for k, v in first.items()}, 0.0, lr0, val)
+    _report(progress, curves, steps)
+    best = {"state": _snapshot(run.tail), "drift": val["drift"], "step": 0}
+    sums, count, step, stopped = {}, 0, 0, f"steps: ran all {steps} steps"
+    try:
+        while step < steps:
+            # The schedules follow steps, not the clock, so a run is reproducible whatever the
+            # machine's speed; ``minutes`` only stops the loop early.
+            p = step / steps
+            if deadline is not None and time.perf_counter() >= deadline:
+                stopped = f"minutes: the {minutes} minute limit was reached"
+                break
+            lambda_, lr = dann_lambda(p), dann_learning_rate(p, lr0)
+            for group in optimizer.param_groups:
+                group["lr"] = lr
+            batch = run.next_batch(batch_size)
+            if batch_callback is not None:
+                batch_callback(batch)
+            parts = run.losses(batch, lambda_, weights)
+            optimizer.zero_grad(set_to_none=True)
+            parts["total"].backward()
+            optimizer.step()
+            step += 1
+            for k, v in parts.items():
+                sums[k] = sums.get(k, 0.0) + float(v.detach())
+            count += 1
+            if step % EVAL_EVERY == 0 or step == steps:
+                val = run.validate()
+                _record(curves, step, {k: v / count for k, v in sums.items()}, lambda_, lr, val)
+                _report(progress, curves, steps)
+                sums, count = {}, 0
+                kinds = {t["name"]: t["kind"] for t in run.tasks}
+                failure = _guard_failure(probes0, val["probes"], guard_margin, kinds, len(run.val_pos))
+                if failure:
+                    stopped = failure
+                    break
+                if val["drift"] < best["drift"]:
+                    best = {"state": _snapshot(run.tail), "drift": val["drift"], "step": step}
+    except KeyboardInterrupt:
+        stopped = "interrupted"
+    info = {"steps_run": step, "stopped_because": stopped, "curves": curves, "best_step": best["step"],
+            "seconds": time.perf_counter() - start_time}
+    return best["state"], info
+
+
+# ---------------------------------------------------------------- public entry point
+
+
+def _check_int(name, value, low, high=None) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low or (
+        high is not None and value > high
+    ):
+        bound = f"between {low} and {high}" if high is not None else f"of at least {low}"
+        raise InvarianceError(f"{name}={value!r} is not valid; pass an integer {bound}")
+    return int(value)
+
+
+def _check_float(name, value, low, high, *, allow_none=False):
+    if value is None and allow_none:
+        return None
+    if isinstance(value, bool) or not isinstance(value, (int, float, np.floating)) or not (
+        low <= float(value) <= high and math.isfinite(float(value))
+    ):
+        raise InvarianceError(f"{name}={value!r} is not valid; pass a number between {low} and {high}")
+    return float(value)
+
+
+def _checked_options(steps, minutes, batch_size, anchor_weight, paired_weight, task_weight, learning_rate,
+                     guard_margin, permutations, seed) -> dict:
+    return {
+        "steps": _check_int("steps", steps, 1, 1_000_000),
+        "minutes": _check_float("minutes", minutes, 0.01, 24 * 60, allow_none=True),
+        "batch_size": _check_int("batch_size", batch_size, 2, 4096),
+        "weights": {
+            "anchor": _check_float("anchor_weight", anchor_weight, 0.0, 1e6),
+            "paired": _check_float("paired_weight", paired_weight, 0.0, 1e6),
+            "task": _check_float("task_weight", task_weight, 0.0, 1e6),
+        },
+        "lr0": _check_float("learning_rate", learning_rate, 1e-8, 1.0),
+        "guard_margin": _check_float("guard_margin", guard_margin, 0.0, 1.0),
+        "permutations": _check_int("permutations", permutations, 0),
+        "seed": _check_int("seed", seed, 0),
+    }
+
+
+def _held_out_metrics(pairs, encoder, *, batch_size, seed, permutations) -> dict:
+    from .encoders import extract_features
+    from .scoring import score_features
+
+    clean, cluttered = extract_features(pairs, encoder, batch_size=batch_size, cache_dir=None, progress=False)["output"]
+    labels = pairs.labels
+    return score_features(
+        clean, cluttered,
+        tasks=(labels.tasks or None) if labels is not None else None,
+        factors=(labels.factors or None) if labels is not None else None,
+        names=list(pairs.names), seed=seed, permutations=permutations,
+    )["metrics"]
+
+
+def _prepare(pairs, encoder, train_from, align_idx, train_idx, val_idx, batch_size, seed):
+    aligned = copy.deepcopy(encoder.module).eval()
+    example = _preprocessed([pairs.clean[i] for i in align_idx[:_SPLIT_CHECK_IMAGES]], encoder).to(encoder.device)
+    trunk, tail, node = split_module(aligned, train_from, example)
+    for p in trunk.parameters():
+        p.requires_grad_(False)
+    for p in tail.parameters():
+        p.requires_grad_(True)
+    act_clean = _trunk_activations([pairs.clean[i] for i in align_idx], encoder, trunk, batch_size)
+    act_clut = _trunk_activations([pairs.cluttered[i] for i in align_idx], encoder, trunk, batch_size)
+    train_pos, val_pos = np.searchsorted(align_idx, train_idx), np.searchsorted(align_idx, val_idx)
+    f0_train = _features(tail, act_clean[train_pos]).cpu().numpy()
+    mean, spread = _standardiser(f0_train)
+    labels = pairs.labels
+    tasks = {k: np.asarray(v)[align_idx] for k, v in _check_labels(pairs).items()}
+    built = _build_tasks(tasks, labels.task_kinds if labels is not None else {}, train_pos, (f0_train - mean) / spread)
+    head_input = (torch.as_tensor(mean, dtype=torch.float32, device=act_clean.device), spread)
+    run = _Run(tail, act_clean, act_clut, train_pos, val_pos, built, head_input, seed)
+    return aligned, run, node
+
+
+def align_encoder(
+    pairs,
+    encoder,
+    *,
+    out,
+    steps: int = 300,
+    minutes: float | None = None,
+    train_from: str | None = None,
+    held_out_fraction: float = 0.3,
+    anchor_weight: float = DEFAULT_ANCHOR_WEIGHT,
+    paired_weight: float = DEFAULT_PAIRED_WEIGHT,
+    task_weight: float = DEFAULT_TASK_WEIGHT,
+    learning_rate: float = DEFAULT_LEARNING_RATE,
+    guard_margin: float = DEFAULT_GUARD_MARGIN,
+    seed: int = 0,
+    batch_size: int = 32,
+    progress=True,
+    permutations: int = 1000,
+    batch_callback=None,
+) -> dict:
+    """Align an encoder's last stage(s) so clean and cluttered views give the same features.
+
+    Domain-adversarial training (Ganin & Lempitsky, ICML 2015; Ganin et al., JMLR 2016):
+    a discriminator (D -> 64 -> 1, logistic loss) sees clean and cluttered features
+    through a gradient reversal layer whose weight follows the DANN schedule
+    ``lambda_p = 2 / (1 + exp(-10 p)) - 1``; the learning rate follows
+    ``lr / (1 + 10 p) ** 0.75`` (JMLR sec. 5.2.2) with Adam in place of their SGD, which
+    converges in the few hundred steps a CPU run affords (common practice). The loss is
+
+        domain + anchor_weight * anchor + task_weight * task + paired_weight * paired
+
+    where ``anchor`` is the mean squared distance of clean features from the original
+    encoder's, divided by the mean variance of the original clean features; ``task`` sums
+    a cross-entropy (classes) or squared error (standardised numbers) of one linear head
+    per label column on clean features, heads warm-started on the original features;
+    ``paired`` is the relative squared distance of each cluttered feature from its scene's
+    clean feature (gradient stopped on the clean side).
+
+    Batch normalisation keeps its running statistics (the tail stays in eval mode): a
+    mixed clean/cluttered batch of a few dozen would otherwise overwrite the statistics
+    the checkpoint ships with.
+
+    Every ``EVAL_EVERY`` steps the validation slice of the alignment pairs is checked: the
+    grouped 3-fold accuracy of a fresh logistic-regression domain classifier on its
+    features (not the adversary's own accuracy, which only says how well the adversary
+    is doing) and a clean probe per label (logistic regression / ridge fitted on the
+    training pairs' clean features, accuracy / R^2 on the slice's), and the slice's
+    relative paired drift. The state with the lowest validation drift is kept: a domain
+    accuracy on a few dozen pairs moves in coarse, noisy steps and sits near 1 while
+    clutter still separates the domains, whereas drift falls smoothly as scenes align.
+    Training stops when a clean probe falls more than ``guard_margin`` (relative) below
+    its start (and beyond the slice's sampling noise for accuracies).
+
+    Parameters
+    ----------
+    pairs : invariance.data.PairSet
+        Paired scenes; labels (optional) give the task heads and the clean probes.
+    encoder : invariance.encoders.Encoder
+        The encoder to align (not modified; a copy is trained).
+    out : str or Path
+        Checkpoint to write (atomically), loadable as ``checkpoint:OUT``.
+    steps : int, default=300
+        Training steps (one batch of ``batch_size`` pairs, both views, per step).
+    minutes : float, optional
+        Wall-clock limit for the training loop. The schedules follow ``steps`` (so a run
+        is reproducible on any machine); the limit only stops the loop early, keeping
+        the best state validated so far.
+    train_from : str, optional
+        Top-level stage where training starts (``block3``, ``layer4``); default: the last
+        stage with parameters.
+    held_out_fraction : float, default=0.3
+        Share of pairs never trained on, measured before and after.
+    anchor_weight, task_weight, paired_weight : float
+        Loss weights (defaults :data:`DEFAULT_ANCHOR_WEIGHT`, :data:`DEFAULT_TASK_WEIGHT`,
+        :data:`DEFAULT_PAIRED_WEIGHT`; see the notes beside them).
+    learning_rate : float, default=1e-3
+        Initial Adam learning rate ``lr0`` of the annealing schedule (tail, discriminator
+        and task heads alike).
+    guard_margin : float, default=0.05
+        Relative drop of a validation clean probe that stops training.
+    seed : int, default=0
+        Splits, initialisation and batch order; the same seed gives the same numbers on CPU.
+    batch_size : int, default=32
+    progress : bool or callable, default=True
+        True prints a line on stderr at every validation; a callable receives the row.
+    permutations : int, default=1000
+        Permutations of the MMD test in the before/after scoring.
+    batch_callback : callable, optional
+        Called with the data set pair indices of every training batch (for audits).
+
+    Returns
+    -------
+    dict
+        The result JSON's ``alignment`` object: ``before``, ``after`` (metrics on the
+        held-out pairs), ``held_out_pairs``, ``align_pairs``, ``validation_pairs``,
+        ``held_out_indices``, ``checkpoint``, ``train_from``, ``stopped_because``,
+        ``steps_run``, ``best_step``, ``seconds``, ``settings`` and ``curves``.
+
+    Raises
+    ------
+    AlignmentInterrupted
+        On Ctrl-C, after saving the best state so far to ``out``.
+    """
+    opts = _checked_options(steps, minutes, batch_size, anchor_weight, paired_weight, task_weight,
+                            learning_rate, guard_margin, permutations, seed)
+    seed = opts["seed"]
+    out = Path(out)
+    _check_labels(pairs)  # before any work: a mismatch is the user's data, not a crash later
+    align_idx, held_idx = split_pairs(len(pairs), held_out_fraction=held_out_fraction, seed=seed)
+    train_idx, val_idx = validation_slice(align_idx, seed=seed)
+    torch.manual_seed(seed)
+    aligned, run, node = _prepare(pairs, encoder, train_from, align_idx, train_idx, val_idx, opts["batch_size"], seed)
+    audit = None if batch_callback is None else (lambda pos: batch_callback(align_idx[pos]))
+    state, info = _train(run, steps=opts["steps"], minutes=opts["minutes"], batch_size=opts["batch_size"],
+                         lr0=opts["lr0"], weights=opts["weights"], guard_margin=opts["guard_margin"],
+                         progress=progress, batch_callback=audit)
+    run.tail.load_state_dict(state)
+    settings = {"train_from": node, "steps": opts["steps"], "minutes": opts["minutes"],
+                "batch_size": opts["batch_size"], "learning_rate": opts["lr0"], "guard_margin": opts["guard_margin"],
+                "anchor_weight": opts["weights"]["anchor"], "task_weight": opts["weights"]["task"],
+                "paired_weight": opts["weights"]["paired"], "held_out_fraction": float(held_out_fraction),
+                "seed": seed, "tasks": [t["name"] for t in run.tasks]}
+    _save(out, encoder, aligned, pairs, settings, info, held_idx)
+    if info["stopped_because"] == "interrupted":
+        interrupted = AlignmentInterrupted(out, info["steps_run"])
+        if progress:
+            print(str(interrupted), file=sys.stderr, flush=True)
+        raise interrupted
+    from .encoders import load_encoder
+
+    held_out = pairs.subset(held_idx)
+    scoring = {"batch_size": opts["batch_size"], "seed": seed, "permutations": opts["permutations"]}
+    before = _held_out_metrics(held_out, encoder, **scoring)
+    after = _held_out_metrics(held_out, load_encoder(f"checkpoint:{out}", device=str(encoder.device)), **scoring)
+    return {
+        "before": before, "after": after,
+        "held_out_pairs": len(held_idx), "align_pairs": len(align_idx), "validation_pairs": len(val_idx),
+        "held_out_indices": held_idx.tolist(), "checkpoint": str(out), "train_from": node,
+        "stopped_because": info["stopped_because"], "steps_run": info["steps_run"], "best_step": info["best_step"],
+        "seconds": round(info["seconds"], 3), "settings": settings, "curves": info["curves"],
+    }
+
+
+def _save(out, encoder, aligned, pairs, settings, info, held_idx) -> None:
+    from .encoders import save_checkpoint
+
+    curves = info["curves"]
+    metadata = {
+        "source_spec": encoder.spec,
+        "data_content_hash": pairs.content_hash(),
+        "settings": settings,
+        "steps_run": info["steps_run"],
+        "best_step": info["best_step"],
+        "stopped_because": info["stopped_because"],
+        "final_losses": {k: curves[f"loss_{k}"][-1] for k in ("total", "domain", "anchor", "task", "paired")},
+        "held_out_indices": held_idx.tolist(),
+    }
+    save_checkpoint(out, encoder=encoder, module=aligned, metadata=metadata)
