@@ -387,21 +387,27 @@ def report(results, out_path, title):
 @click.option("--weights", type=click.Path(dir_okay=False, path_type=Path), help="Local state_dict for a torchvision: spec.")
 @click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="Checkpoint to write (load it later as checkpoint:FILE).")
-@click.option("--steps", type=click.IntRange(1, 1_000_000), default=300, show_default=True, help="Training steps at most.")
+@click.option("--steps", type=click.IntRange(1, 1_000_000), default=None,
+              help="Training steps (the schedules follow it) [default: the library's, see align_encoder].")
 @click.option("--minutes", type=click.FloatRange(0, min_open=True), default=None, help="Wall-clock limit.")
 @click.option("--train-from", "train_from", default=None,
               help="First top-level block to train (earlier blocks are frozen and cached); default: the last block.")
-@click.option("--held-out", "held_out", type=click.FloatRange(0.05, 0.9), default=0.3, show_default=True,
+@click.option("--held-out", "held_out", type=click.FloatRange(0.05, 0.8), default=0.3, show_default=True,
               help="Fraction of pairs never trained on; before/after are measured on them.")
 @click.option("--anchor-weight", type=click.FloatRange(0), default=None, help="Weight of the clean-feature anchor loss.")
 @click.option("--paired-weight", type=click.FloatRange(0), default=None, help="Weight of the paired consistency loss.")
+@click.option("--task-weight", type=click.FloatRange(0), default=None, help="Weight of the task heads on clean labels.")
+@click.option("--learning-rate", type=click.FloatRange(0, min_open=True), default=None, help="Initial learning rate.")
+@click.option("--guard-margin", type=click.FloatRange(0, 1), default=None,
+              help="Stop when a clean probe falls more than this relative margin below its start [default 0.05].")
 @click.option("--json", "json_path", type=click.Path(dir_okay=False, path_type=Path), help="Write the result JSON here.")
 @click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path), help="Write an HTML report here.")
 @click.option("--permutations", type=click.IntRange(1, 1_000_000), default=1000, show_default=True)
 @_run_options
 @_handle_errors
-def align(data, spec, weights, out_path, steps, minutes, train_from, held_out, anchor_weight, paired_weight, json_path,
-          report_path, permutations, seed, image_size, device, batch_size, cache_dir, no_cache, skip_unpaired, quiet):
+def align(data, spec, weights, out_path, steps, minutes, train_from, held_out, anchor_weight, paired_weight, task_weight,
+          learning_rate, guard_margin, json_path, report_path, permutations, seed, image_size, device, batch_size,
+          cache_dir, no_cache, skip_unpaired, quiet):
     """Briefly retrain the encoder's last block(s) so clutter no longer separates its features.
 
     Gradient-reversal adversarial training (Ganin & Lempitsky 2015) against a small domain
@@ -411,13 +417,20 @@ def align(data, spec, weights, out_path, steps, minutes, train_from, held_out, a
     """
     from . import pipeline
 
+    from .align import AlignmentInterrupted
+
     _check_output_paths(out_path, json_path, report_path)
-    result = pipeline.align_dataset(
-        data, spec, weights=weights, out=out_path, steps=steps, minutes=minutes, train_from=train_from,
-        held_out_fraction=held_out, anchor_weight=anchor_weight, paired_weight=paired_weight, seed=seed,
-        image_size=image_size, device=device, batch_size=batch_size, skip_unpaired=skip_unpaired,
-        permutations=permutations, progress=not quiet,
-    )
+    try:
+        result = pipeline.align_dataset(
+            data, spec, weights=weights, out=out_path, steps=steps, minutes=minutes, train_from=train_from,
+            held_out_fraction=held_out, anchor_weight=anchor_weight, paired_weight=paired_weight,
+            task_weight=task_weight, learning_rate=learning_rate, guard_margin=guard_margin, seed=seed,
+            image_size=image_size, device=device, batch_size=batch_size, skip_unpaired=skip_unpaired,
+            permutations=permutations, progress=not quiet,
+        )
+    except AlignmentInterrupted as exc:
+        click.echo(f"{exc} (load it as checkpoint:{exc.checkpoint})", err=True)
+        sys.exit(130)
     _write_outputs(result, json_path=json_path, report_path=report_path)
     _print_alignment(result)
 
@@ -427,8 +440,8 @@ def _print_alignment(result):
 
     al = result["alignment"]
     click.echo(f"aligned checkpoint: {al['checkpoint']} (load it as checkpoint:{al['checkpoint']})")
-    click.echo(f"stopped: {al.get('stopped_because', 'step limit')} after {al.get('steps_run', '?')} steps; "
-               f"measured on {al['held_out_pairs']} held-out pairs")
+    click.echo(f"stopped: {al.get('stopped_because', 'step limit')}; kept the state of step {al.get('best_step', '?')} "
+               f"(step 0 = the original encoder); measured on {al['held_out_pairs']} held-out pairs")
     rows = [("domain accuracy", "domain_classifier", "accuracy"), ("relative drift", "paired_drift", "relative_drift"),
             ("CKA", "cka", None)]
     for label, group, key in rows:

@@ -288,12 +288,15 @@ def align_dataset(
     *,
     out,
     weights=None,
-    steps: int = 300,
+    steps: int | None = None,
     minutes: float | None = None,
     train_from: str | None = None,
     held_out_fraction: float = 0.3,
     anchor_weight: float | None = None,
     paired_weight: float | None = None,
+    task_weight: float | None = None,
+    learning_rate: float | None = None,
+    guard_margin: float | None = None,
     seed: int = 0,
     image_size: int | None = None,
     device: str = "auto",
@@ -314,11 +317,13 @@ def align_dataset(
     from .encoders import load_encoder
 
     encoder = load_encoder(spec, weights=weights, device=device, image_size=image_size)
+    # Options left as None take the library's defaults (documented in align_encoder).
     optional = {"anchor_weight": anchor_weight, "paired_weight": paired_weight, "minutes": minutes,
-                "train_from": train_from}
+                "train_from": train_from, "steps": steps, "task_weight": task_weight,
+                "learning_rate": learning_rate, "guard_margin": guard_margin}
     start = time.perf_counter()
     alignment = align_encoder(
-        pairs, encoder, out=out, steps=steps, held_out_fraction=held_out_fraction, seed=seed,
+        pairs, encoder, out=out, held_out_fraction=held_out_fraction, seed=seed,
         batch_size=batch_size, progress=progress, permutations=permutations,
         **{k: v for k, v in optional.items() if v is not None},
     )
