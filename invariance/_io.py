@@ -32,12 +32,23 @@ def dumps_json(data) -> str:
     return json.dumps(data, indent=2, sort_keys=False, default=_json_default, allow_nan=False)
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 def atomic_write_bytes(path: str | os.PathLike, data: bytes) -> Path:
-    """Write ``data`` to ``path`` through a temporary file in the same folder and a rename."""
+    """Write ``data`` to ``path`` through a temporary file in the same folder and a rename.
+
+    The file gets the usual permissions for new files (0666 less the umask), not the
+    owner-only mode of temporary files.
+    """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
+        os.fchmod(fd, 0o666 & ~_umask())
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()

@@ -148,9 +148,26 @@ def _print_summary(result, quiet=False):
     header = ("metric", "value", "95% interval", "reading")
     for row in [header, *rows]:
         click.echo("  ".join(str(c).ljust(w) for c, w in zip(row[:3], widths)) + "  " + str(row[3]))
+    _print_breakdowns(result.get("breakdowns") or {})
     for warning in result.get("warnings", []):
         click.echo(f"warning: {warning}")
     click.echo(f"note: {SAFETY_CAUTION}")
+
+
+def _print_breakdowns(breakdowns):
+    """One line per factor: domain accuracy and relative drift at each value (dose-response)."""
+    from .results import metric_value
+
+    for column, groups in breakdowns.items():
+        cells = []
+        for value, group in groups.items():
+            m = group.get("metrics", {})
+            acc = metric_value(m, "domain_classifier", "accuracy")
+            drift = metric_value(m, "paired_drift", "relative_drift")
+            acc_s = "n/a" if acc is None else f"{acc:.2f}"
+            drift_s = "n/a" if drift is None else f"{drift:.2f}"
+            cells.append(f"{value}: acc {acc_s}, drift {drift_s} (n={group.get('pairs')})")
+        click.echo(f"by {column}: " + "; ".join(cells))
 
 
 def _load_features_labels(labels_path, n_rows):
@@ -346,16 +363,18 @@ def _print_ranking(comparison):
     from .results import display_name, metric_value, rank_results
 
     results = comparison["results"]
-    click.echo("rank  encoder  domain accuracy [95% CI]  relative drift  CKA")
+    fmt = lambda v: "n/a" if v is None else f"{v:.3f}"
+    rows = [("rank", "encoder", "domain accuracy [95% CI]", "relative drift", "CKA")]
     for rank, i in enumerate(rank_results(results), 1):
         m = results[i]["metrics"]
         acc = metric_value(m, "domain_classifier", "accuracy")
         ci = m.get("domain_classifier", {}).get("ci")
-        drift = metric_value(m, "paired_drift", "relative_drift")
-        cka = metric_value(m, "cka")
         acc_s = f"{acc:.3f} [{ci[0]:.3f}, {ci[1]:.3f}]" if acc is not None and ci else "n/a"
-        click.echo(f"{rank:>4}  {display_name(results[i])}  {acc_s}  "
-                   f"{'n/a' if drift is None else f'{drift:.3f}'}  {'n/a' if cka is None else f'{cka:.3f}'}")
+        rows.append((str(rank), display_name(results[i]), acc_s, fmt(metric_value(m, "paired_drift", "relative_drift")),
+                     fmt(metric_value(m, "cka"))))
+    widths = [max(len(r[c]) for r in rows) for c in range(len(rows[0]))]
+    for row in rows:
+        click.echo("  ".join(cell.ljust(w) for cell, w in zip(row, widths)).rstrip())
     for failure in comparison.get("failures", []):
         click.echo(f"failed: {failure['name']}: {failure['error']}")
     for warning in comparison.get("warnings", []):
