@@ -22,13 +22,7 @@ from invariance.errors import InvarianceError
 SIZE = 32
 
 
-@pytest.fixture(scope="module", autouse=True)
-def _one_thread():
-    # The test machine is shared; one intra-op thread avoids oversubscription stalls.
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
+pytestmark = pytest.mark.usefixtures("one_torch_thread")
 
 
 def _write_pairs(root, n=5, size=(40, 48), seed=0):

@@ -20,13 +20,7 @@ from invariance.errors import InvarianceError
 SIZE = 32
 
 
-@pytest.fixture(scope="module", autouse=True)
-def _one_thread():
-    # The test machine is shared; one intra-op thread avoids oversubscription stalls.
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
+pytestmark = pytest.mark.usefixtures("one_torch_thread")
 
 
 @pytest.fixture

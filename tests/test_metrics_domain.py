@@ -5,6 +5,7 @@ import pytest
 from scipy.stats import beta, binom
 from sklearn.model_selection import cross_val_score
 
+from conftest import paired_gaussians
 from invariance.errors import InvarianceError
 from invariance.metrics.domain import (
     DEFAULT_CS,
@@ -15,12 +16,7 @@ from invariance.metrics.domain import (
 
 
 def _paired(n, d, seed, shift=0.0, noise=1.0):
-    """One distribution for both domains unless shifted; x_i, y_i share scene z_i."""
-    rng = np.random.default_rng(seed)
-    z = rng.standard_normal((n, d))
-    x = z + noise * rng.standard_normal((n, d))
-    y = z + noise * rng.standard_normal((n, d)) + shift
-    return x, y
+    return paired_gaussians(n, d, seed, shift, noise)
 
 
 def test_accuracy_equals_cross_val_score_on_the_same_folds():

@@ -7,6 +7,7 @@ from scipy.spatial.distance import pdist
 from scipy.stats import norm
 from sklearn.metrics.pairwise import rbf_kernel
 
+from conftest import paired_gaussians
 from invariance.errors import InvarianceError
 from invariance.metrics import mmd
 from invariance.metrics.mmd import (
@@ -18,16 +19,7 @@ from invariance.metrics.mmd import (
 
 
 def _paired(n, d, seed, shift=0.0, noise=0.5):
-    """Paired sample: one scene z_i seen twice with independent noise.
-
-    Without a shift, x_i and y_i are exchangeable within each pair, the null of the
-    permutation test.
-    """
-    rng = np.random.default_rng(seed)
-    z = rng.standard_normal((n, d))
-    x = z + noise * rng.standard_normal((n, d))
-    y = z + noise * rng.standard_normal((n, d)) + shift
-    return x, y
+    return paired_gaussians(n, d, seed, shift, noise)
 
 
 def test_kernel_equals_sklearn_rbf_kernel():
