@@ -201,6 +201,52 @@ def test_guard_allows_noise_but_stops_a_real_fall():
     assert align._guard_failure({"x": -0.2}, {"x": -0.9}, 0.05, kinds, 50) is None
 
 
+def _identity_run(clean, cluttered):
+    n = len(clean)
+    train_pos = np.arange(n - 2)
+    head_input = (torch.zeros(clean.shape[1]), 1.0)
+    return align._Run(nn.Identity(), clean, cluttered, train_pos, np.arange(n - 2, n), [], head_input, 0)
+
+
+def test_paired_loss_divides_each_feature_by_its_clean_variance():
+    # Reference: the mean over pairs and features of (cluttered - clean)^2 / var_j, var_j the
+    # unbiased variance of feature j over the training pairs' original clean features
+    # (per-feature standardisation, common practice), floored at PAIRED_VARIANCE_FLOOR of
+    # the mean variance; computed here with numpy. The last feature is nearly constant on
+    # clean scenes, so the floor decides its divisor.
+    rng = np.random.default_rng(0)
+    clean = rng.normal(size=(12, 5)) * np.array([0.5, 1.0, 3.0, 2.0, 1e-4])
+    cluttered = clean + rng.normal(size=(12, 5))
+    run = _identity_run(torch.tensor(clean, dtype=torch.float32), torch.tensor(cluttered, dtype=torch.float32))
+    batch = np.array([0, 3, 4, 7])
+    var = clean[:10].var(axis=0, ddof=1)
+    floor = align.PAIRED_VARIANCE_FLOOR * var.mean()
+    assert var[-1] < floor < var[:-1].min()  # the case covers both branches
+    var = np.maximum(var, floor)
+    expected = ((cluttered[batch] - clean[batch]) ** 2 / var).mean()
+    weights = {"anchor": 1.0, "task": 1.0, "paired": 1.0}
+    got = float(run.losses(batch, 0.0, weights)["paired"])
+    assert got == pytest.approx(expected, rel=1e-5)
+
+
+def test_paired_loss_does_not_depend_on_a_feature_scale():
+    # Rescaling one feature (clean and cluttered alike) leaves a standardised loss unchanged,
+    # whereas a loss divided by the mean variance would change (the floor stays below every
+    # feature's variance here).
+    rng = np.random.default_rng(1)
+    clean = rng.normal(size=(12, 4))
+    cluttered = clean + rng.normal(size=(12, 4))
+    scale = np.array([1.0, 1.0, 1.0, 5.0])
+    weights = {"anchor": 1.0, "task": 1.0, "paired": 1.0}
+    batch = np.arange(8)
+    losses = [
+        float(_identity_run(torch.tensor(c * k, dtype=torch.float32), torch.tensor(x * k, dtype=torch.float32))
+              .losses(batch, 0.0, weights)["paired"])
+        for c, x, k in ((clean, cluttered, 1.0), (clean, cluttered, scale))
+    ]
+    assert losses[1] == pytest.approx(losses[0], rel=1e-4)
+
+
 # ---------------------------------------------------------------- end to end (small)
 
 
@@ -347,8 +393,9 @@ def test_acceptance_on_workbench_scenes(tmp_path):
     pairs = discover_pairs(tmp_path / "set")
     encoder = load_encoder("python:invariance.zoo:clean_only_encoder", device="cpu")
     start = time.perf_counter()
-    # 1500 steps take about 70 s on 2 idle cores; the 3-minute limit caps a busy machine.
-    result = align_encoder(pairs, encoder, out=tmp_path / "aligned.pt", train_from="block3", steps=1500,
+    # The default settings (300 steps, 15-90 s on 2 shared cores); the issue's 3-minute
+    # limit caps a busy machine.
+    result = align_encoder(pairs, encoder, out=tmp_path / "aligned.pt", train_from="block3",
                            minutes=3.0, permutations=200, progress=False)
     minutes = (time.perf_counter() - start) / 60
     before, after = _figures(result["before"]), _figures(result["after"])
@@ -367,9 +414,12 @@ def test_acceptance_on_workbench_scenes(tmp_path):
     for task in informative:
         assert after[f"probe.{task}.clean"] >= 0.95 * before[f"probe.{task}.clean"], task
         assert after[f"probe.{task}.cluttered"] >= before[f"probe.{task}.cluttered"], task
-    # Scenes move towards their clean twins: at least the 30% drift drop asked for.
+    # Issue targets. Scenes move towards their clean twins: at least the 30% drift drop.
     assert after["relative_drift"] <= 0.7 * before["relative_drift"]
-    # Measured 0.989 -> 0.978: a linear domain classifier still separates the views. A
-    # tail-only alignment of this clean-only encoder does not reach a 0.15 drop here (the
+    # The issue also asks for a 0.15 absolute drop of the held-out domain accuracy. Measured
+    # 0.989 -> 0.956 with the defaults (0.978 with the earlier paired weight 0.1): no setting
+    # in align_encoder's tuning table went below 0.95, most likely because the last block
+    # of an encoder that never saw clutter cannot remove it from the pooled features (the
     # clutter-augmented encoder, trained on clutter in every layer, still scores 0.958).
-    assert after["domain_accuracy"] <= before["domain_accuracy"]
+    # Asserted here is what is met: the accuracy falls.
+    assert after["domain_accuracy"] < before["domain_accuracy"]
