@@ -195,10 +195,11 @@ def _load_features_labels(labels_path, n_rows):
 @click.option("--max-domain-accuracy", type=click.FloatRange(0, 1), help="Gate: exit 3 if held-out domain accuracy is above this.")
 @click.option("--max-relative-drift", type=click.FloatRange(0), help="Gate: exit 3 if relative drift is above this.")
 @click.option("--max-probe-gap", type=float, help="Gate: exit 3 if any probe's clean-minus-cluttered gap is above this.")
+@click.option("--tsne", is_flag=True, help="Add a t-SNE view of the features to the report (slower).")
 @_run_options
 @_handle_errors
 def score(data, spec, weights, layers, features, labels_csv, json_path, report_path, drift_csv, permutations, folds,
-          max_domain_accuracy, max_relative_drift, max_probe_gap, seed, image_size, device, batch_size, cache_dir,
+          max_domain_accuracy, max_relative_drift, max_probe_gap, tsne, seed, image_size, device, batch_size, cache_dir,
           no_cache, skip_unpaired, quiet):
     """Measure how differently an encoder sees the clean and cluttered views of the same scenes.
 
@@ -216,22 +217,23 @@ def score(data, spec, weights, layers, features, labels_csv, json_path, report_p
         raise click.UsageError("--features replaces DATA and --encoder; give one or the other")
     _check_output_paths(json_path, report_path, drift_csv)
     if features is not None:
-        result = _score_features_files(features, labels_csv, seed=seed, permutations=permutations, folds=folds)
+        result = _score_features_files(features, labels_csv, seed=seed, permutations=permutations, folds=folds,
+                                       tsne=tsne)
     else:
         result = pipeline.score_dataset(
             data, spec, weights=weights, layers=layers, seed=seed, permutations=permutations, folds=folds,
             image_size=image_size, device=device, cache_dir=_cache_dir(cache_dir, no_cache), batch_size=batch_size,
-            skip_unpaired=skip_unpaired, progress=not quiet,
+            skip_unpaired=skip_unpaired, progress=not quiet, tsne=tsne,
         )
     thresholds = {"max_domain_accuracy": max_domain_accuracy, "max_relative_drift": max_relative_drift,
                   "max_probe_gap": max_probe_gap}
     result["gates"] = pipeline.evaluate_gates(result, thresholds)
-    _write_outputs(result, json_path=json_path, report_path=report_path, drift_csv=drift_csv)
+    _write_outputs(result, json_path=json_path, report_path=report_path, drift_csv=drift_csv, tsne=tsne)
     _print_summary(result)
     pipeline.raise_for_gates(result["gates"])
 
 
-def _score_features_files(features, labels_csv, *, seed, permutations, folds):
+def _score_features_files(features, labels_csv, *, seed, permutations, folds, tsne=False):
     from . import pipeline
     from .scoring import load_feature_files
 
@@ -242,11 +244,11 @@ def _score_features_files(features, labels_csv, *, seed, permutations, folds):
         tasks, factors = table.tasks or None, table.factors or None
     return pipeline.score_feature_arrays(
         clean, cluttered, tasks=tasks, factors=factors, names=names, seed=seed, permutations=permutations, folds=folds,
-        source={"spec": f"features:{features[0]}", "name": Path(features[0]).stem, "path": str(Path(features[0]).parent)},
+        tsne=tsne, source={"spec": f"features:{features[0]}", "name": Path(features[0]).stem, "path": str(Path(features[0]).parent)},
     )
 
 
-def _write_outputs(result, *, json_path=None, report_path=None, drift_csv=None):
+def _write_outputs(result, *, json_path=None, report_path=None, drift_csv=None, tsne=False):
     from ._io import atomic_write_json, atomic_write_text
 
     if json_path:
@@ -259,7 +261,7 @@ def _write_outputs(result, *, json_path=None, report_path=None, drift_csv=None):
     if report_path:
         from .report.html import write_report
 
-        write_report(report_path, [result])
+        write_report(report_path, [result], tsne=tsne)
         click.echo(f"report: {report_path}")
 
 
@@ -325,9 +327,10 @@ def _read_encoders_toml(path):
 @click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path), help="Write the HTML report here.")
 @click.option("--permutations", type=click.IntRange(1, 1_000_000), default=1000, show_default=True)
 @click.option("--folds", type=click.IntRange(2, 50), default=5, show_default=True)
+@click.option("--tsne", is_flag=True, help="Add a t-SNE view of the features to the report (slower).")
 @_run_options
 @_handle_errors
-def compare(data, specs, encoders_toml, layers, json_path, report_path, permutations, folds, seed, image_size, device,
+def compare(data, specs, encoders_toml, layers, json_path, report_path, permutations, folds, tsne, seed, image_size, device,
             batch_size, cache_dir, no_cache, skip_unpaired, quiet):
     """Score several encoders on the same pairs, folds and permutations, and rank them.
 
@@ -346,7 +349,7 @@ def compare(data, specs, encoders_toml, layers, json_path, report_path, permutat
     comparison = pipeline.compare_encoders(
         data, entries, seed=seed, permutations=permutations, folds=folds, image_size=image_size, device=device,
         cache_dir=_cache_dir(cache_dir, no_cache), batch_size=batch_size, skip_unpaired=skip_unpaired,
-        progress=not quiet, echo=_echo_err(quiet),
+        progress=not quiet, echo=_echo_err(quiet), tsne=tsne,
     )
     if json_path:
         atomic_write_json(json_path, comparison)
@@ -354,7 +357,8 @@ def compare(data, specs, encoders_toml, layers, json_path, report_path, permutat
     if report_path:
         from .report.html import write_report
 
-        write_report(report_path, comparison["results"], failures=comparison["failures"], warnings=comparison["warnings"])
+        write_report(report_path, comparison["results"], failures=comparison["failures"], warnings=comparison["warnings"],
+                     tsne=tsne)
         click.echo(f"report: {report_path}")
     _print_ranking(comparison)
 
@@ -387,8 +391,11 @@ def _print_ranking(comparison):
 @click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="The HTML file to write (self-contained, opens offline).")
 @click.option("--title", default=None, help="Report title.")
+@click.option("--tsne", is_flag=True, help="Show the t-SNE views stored in the results (scored with --tsne).")
+@click.option("--image-root", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="Folder holding clean/ and cluttered/ when the results were made on another machine.")
 @_handle_errors
-def report(results, out_path, title):
+def report(results, out_path, title, tsne, image_root):
     """Render the HTML report from saved result or comparison JSON files (from any machine)."""
     from .report.html import write_report
     from .results import load_as_comparison
@@ -396,7 +403,7 @@ def report(results, out_path, title):
     _check_output_paths(out_path)
     comparison = load_as_comparison(results)
     write_report(out_path, comparison["results"], failures=comparison["failures"],
-                 warnings=comparison["warnings"], title=title)
+                 warnings=comparison["warnings"], title=title, tsne=tsne, image_root_overrides=image_root)
     click.echo(f"report: {out_path}")
 
 

@@ -67,8 +67,8 @@ def environment_info(*, seed: int, device: str | None = None, command: str | Non
     return info
 
 
-def _scoring_kwargs(seed, permutations, folds):
-    return {"seed": seed, "permutations": permutations, "folds": folds}
+def _scoring_kwargs(seed, permutations, folds, tsne=False):
+    return {"seed": seed, "permutations": permutations, "folds": folds, "tsne": tsne}
 
 
 def _labels_of(pairs):
@@ -95,6 +95,7 @@ def score_dataset(
     progress: bool = True,
     pairs=None,
     encoder=None,
+    tsne: bool = False,
 ) -> dict:
     """Extract features of every pair with one encoder and score them.
 
@@ -129,7 +130,7 @@ def score_dataset(
     )
     timings["extract"] = time.perf_counter() - start
     start = time.perf_counter()
-    result = _score_layers(features, layer_list, pairs, seed=seed, permutations=permutations, folds=folds)
+    result = _score_layers(features, layer_list, pairs, seed=seed, permutations=permutations, folds=folds, tsne=tsne)
     timings["score"] = time.perf_counter() - start
     result["encoder"] = {**encoder.describe(), "name": name or spec, "layer": layer_list[-1]}
     result["dataset"] = {**pairs.describe(), "content_hash": pairs.content_hash(), "image_size": _image_size(pairs)}
@@ -147,7 +148,7 @@ def _image_size(pairs):
         return None
 
 
-def _score_layers(features: dict, layer_list, pairs, *, seed, permutations, folds) -> dict:
+def _score_layers(features: dict, layer_list, pairs, *, seed, permutations, folds, tsne=False) -> dict:
     from .scoring import score_features
 
     tasks, factors = _labels_of(pairs)
@@ -157,7 +158,7 @@ def _score_layers(features: dict, layer_list, pairs, *, seed, permutations, fold
         clean, cluttered = features[layer]
         scored = score_features(
             clean, cluttered, tasks=tasks, factors=factors, names=list(pairs.names),
-            **_scoring_kwargs(seed, permutations, folds),
+            **_scoring_kwargs(seed, permutations, folds, tsne and layer == layer_list[-1]),
         )
         per_layer[layer] = scored
         primary = scored
@@ -178,6 +179,7 @@ def score_feature_arrays(
     permutations: int = 1000,
     folds: int = 5,
     source: dict | None = None,
+    tsne: bool = False,
 ) -> dict:
     """Score features computed anywhere (rows paired) into a result dict."""
     from .scoring import score_features
@@ -185,7 +187,7 @@ def score_feature_arrays(
     start = time.perf_counter()
     scored = score_features(
         clean, cluttered, tasks=tasks, factors=factors, names=names,
-        **_scoring_kwargs(seed, permutations, folds),
+        **_scoring_kwargs(seed, permutations, folds, tsne),
     )
     elapsed = time.perf_counter() - start
     source = source or {}
@@ -247,6 +249,7 @@ def compare_encoders(
     skip_unpaired: bool = False,
     progress: bool = True,
     echo=None,
+    tsne: bool = False,
 ) -> dict:
     """Score several encoders on the same pairs, folds and permutations.
 
@@ -268,7 +271,7 @@ def compare_encoders(
                     data, entry["spec"], weights=entry.get("weights"), layers=entry.get("layers"),
                     name=entry.get("name"), seed=seed, permutations=permutations, folds=folds,
                     image_size=entry.get("image_size", image_size), device=device, cache_dir=cache_dir,
-                    batch_size=batch_size, progress=progress, pairs=pairs,
+                    batch_size=batch_size, progress=progress, pairs=pairs, tsne=tsne,
                 )
             )
         except InvarianceError as exc:

@@ -173,7 +173,18 @@ def _breakdowns(clean, cluttered, tasks, factors, seed, permutations, folds):
     return out
 
 
-def _projection(clean, cluttered, seed):
+def _tsne(pooled, seed):
+    """2-D t-SNE of the same points (van der Maaten & Hinton, JMLR 9, 2008), PCA-initialised
+    for stability; perplexity 30 (sklearn's default), lowered for small samples since it
+    must stay below the number of points."""
+    from sklearn.manifold import TSNE
+
+    perplexity = float(min(30.0, (pooled.shape[0] - 1) / 3.0))
+    coords = TSNE(n_components=2, perplexity=perplexity, init="pca", random_state=seed).fit_transform(pooled)
+    return np.round(coords, PROJECTION_DECIMALS)
+
+
+def _projection(clean, cluttered, seed, tsne=False):
     n = clean.shape[0]
     indices = np.arange(n)
     if n > PROJECTION_MAX_PAIRS:
@@ -187,7 +198,7 @@ def _projection(clean, cluttered, seed):
     pca = PCA(n_components=2, svd_solver="full").fit(pooled)
     coords = np.round(pca.transform(pooled), PROJECTION_DECIMALS)
     m = indices.size
-    return {
+    out = {
         "method": "pca",
         "clean": coords[:m].tolist(),
         "cluttered": coords[m:].tolist(),
@@ -196,6 +207,10 @@ def _projection(clean, cluttered, seed):
             pca.explained_variance_ratio_, PROJECTION_DECIMALS
         ).tolist(),
     }
+    if tsne:
+        embedded = _tsne(pooled, seed)
+        out["tsne"] = {"clean": embedded[:m].tolist(), "cluttered": embedded[m:].tolist()}
+    return out
 
 
 def _feature_warnings(clean, cluttered):
@@ -276,6 +291,7 @@ def score_features(
     seed=0,
     permutations=1000,
     folds=5,
+    tsne=False,
 ):
     """Every invariance metric on paired clean / cluttered features.
 
@@ -297,6 +313,8 @@ def score_features(
         Permutations of the MMD test.
     folds : int, default=5
         Folds of the domain classifier.
+    tsne : bool, default=False
+        Also embed the projection's points with t-SNE (``projection["tsne"]``); slower.
 
     Returns
     -------
@@ -314,13 +332,13 @@ def score_features(
     """
     _check_args(folds, seed, permutations)
     with threadpool_limits(limits=_THREADS):
-        result = _score(clean, cluttered, tasks, factors, names, seed, permutations, folds)
+        result = _score(clean, cluttered, tasks, factors, names, seed, permutations, folds, tsne)
     result = _plain(result)
     _check_finite(result)
     return result
 
 
-def _score(clean, cluttered, tasks, factors, names, seed, permutations, folds):
+def _score(clean, cluttered, tasks, factors, names, seed, permutations, folds, tsne=False):
     clean, cluttered = _domain._validate_pairs(clean, cluttered, min_pairs=_min_pairs(folds))
     n = clean.shape[0]
     tasks = _check_columns("tasks", tasks, n)
@@ -341,7 +359,7 @@ def _score(clean, cluttered, tasks, factors, names, seed, permutations, folds):
             {"name": str(names[i]), "drift": None if per_pair is None else float(per_pair[i])}
             for i in range(n)
         ],
-        "projection": _projection(clean, cluttered, seed),
+        "projection": _projection(clean, cluttered, seed, tsne),
         "warnings": _feature_warnings(clean, cluttered) + _metric_warnings(metrics),
     }
     return result

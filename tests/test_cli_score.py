@@ -120,3 +120,17 @@ def test_features_and_data_together_is_a_usage_error(tmp_path):
     a, b = _features(tmp_path)
     res = CliRunner().invoke(cli, ["score", str(tmp_path), "--features", str(a), str(b)])
     assert res.exit_code == 2
+
+
+def test_tsne_view_is_stored_and_drawn_when_asked(tmp_path):
+    a, b = _features(tmp_path, shift=0.5, n=60)
+    out, html = tmp_path / "r.json", tmp_path / "r.html"
+    res = _run(["score", "--features", str(a), str(b), "--json", str(out), "--report", str(html),
+                "--permutations", "20", "--tsne"])
+    assert res.exit_code == 0, res.output
+    projection = json.loads(out.read_text())["projection"]
+    assert len(projection["tsne"]["clean"]) == len(projection["clean"]) == 60
+    assert "t-SNE" in html.read_text()
+    plain = tmp_path / "plain.json"
+    _run(["score", "--features", str(a), str(b), "--json", str(plain), "--permutations", "20"])
+    assert "tsne" not in json.loads(plain.read_text())["projection"]  # only when asked: it is slow
