@@ -128,8 +128,9 @@ def tiny_512d_encoder():
 
 
 _FEATURE_MEMORY_CHILD = """
-import resource, sys
+import sys
 from pathlib import Path
+from invariance.bench import _peak_rss_kib, _reset_peak_rss
 from invariance.data import PairSet, discover_pairs
 from invariance.encoders import extract_features, load_encoder
 n = int(sys.argv[1])
@@ -138,10 +139,34 @@ idx = [i % len(base) for i in range(n)]
 pairs = PairSet.from_paths([base.clean[i] for i in idx], [base.cluttered[i] for i in idx], [str(i) for i in range(n)])
 encoder = load_encoder("python:invariance.bench:tiny_512d_encoder", device="cpu")
 extract_features(pairs.subset(range(4)), encoder, progress=False)  # model and libraries loaded
-before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+before = _reset_peak_rss()
 clean, cluttered = extract_features(pairs, encoder, progress=False, batch_size=64)["output"]
-print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, before, clean.shape[1])
+print(_peak_rss_kib(), before, clean.shape[1])
 """
+
+
+def _status_kib(field: str) -> int | None:
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith(field + ":"):
+                return int(line.split()[1])
+    except OSError:
+        pass
+    return None
+
+
+def _reset_peak_rss() -> int:
+    """Reset the peak-RSS mark to the current RSS (Linux: writing 5 to clear_refs, proc(5))
+    and return the current RSS in KiB; elsewhere the peak keeps start-up (an upper bound)."""
+    try:
+        Path("/proc/self/clear_refs").write_text("5")
+    except OSError:
+        pass
+    return _status_kib("VmRSS") or resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+
+
+def _peak_rss_kib() -> int:
+    return _status_kib("VmHWM") or resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
 
 
 def bench_feature_memory(sample_dir, n_pairs: int = 5000) -> dict:
