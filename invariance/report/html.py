@@ -303,12 +303,32 @@ def _read_accuracy(accuracy: float, ci) -> tuple[str, str]:
     return "fully separable", "bad"
 
 
+# Bands as (bound, words, tone), checked in order; the last band has no bound. For
+# "lower is better" metrics a value at or below the bound falls in the band; for "higher is
+# better" ones a value at or above it.
+_LOWER_IS_BETTER = {
+    "pad": ((0.2, "small", "good"), (1.0, "moderate", "warn"), (None, "large", "bad")),
+    "drift": ((0.1, "small", "good"), (0.3, "moderate", "fair"), (0.7, "large", "warn"),
+              (None, "near a scene change", "bad")),
+    "gap": ((0.02, "task kept", "good"), (0.1, "some loss", "warn"), (None, "task degraded", "bad")),
+}
+_HIGHER_IS_BETTER = {
+    "retrieval": ((0.9, "own pair found", "good"), (0.5, "often found", "warn"), (None, "often lost", "bad")),
+    "cka": ((0.9, "very similar", "good"), (0.7, "similar", "fair"), (0.4, "partly similar", "warn"),
+            (None, "dissimilar", "bad")),
+}
+
+
+def _band(metric: str, value: float) -> tuple[str, str]:
+    lower = metric in _LOWER_IS_BETTER
+    for bound, words, tone in (_LOWER_IS_BETTER if lower else _HIGHER_IS_BETTER)[metric]:
+        if bound is None or (value <= bound if lower else value >= bound):
+            return words, tone
+    raise AssertionError("the last band has no bound")
+
+
 def _read_pad(distance: float) -> tuple[str, str]:
-    if distance < 0.2:
-        return "small", "good"
-    if distance < 1.0:
-        return "moderate", "warn"
-    return "large", "bad"
+    return _band("pad", distance)
 
 
 def _read_mmd(p_value) -> tuple[str, str]:
@@ -318,39 +338,19 @@ def _read_mmd(p_value) -> tuple[str, str]:
 
 
 def _read_drift(drift: float) -> tuple[str, str]:
-    if drift < 0.1:
-        return "small", "good"
-    if drift < 0.3:
-        return "moderate", "fair"
-    if drift < 0.7:
-        return "large", "warn"
-    return "near a scene change", "bad"
+    return _band("drift", drift)
 
 
 def _read_retrieval(top1: float) -> tuple[str, str]:
-    if top1 >= 0.9:
-        return "own pair found", "good"
-    if top1 >= 0.5:
-        return "often found", "warn"
-    return "often lost", "bad"
+    return _band("retrieval", top1)
 
 
 def _read_cka(cka: float) -> tuple[str, str]:
-    if cka >= 0.9:
-        return "very similar", "good"
-    if cka >= 0.7:
-        return "similar", "fair"
-    if cka >= 0.4:
-        return "partly similar", "warn"
-    return "dissimilar", "bad"
+    return _band("cka", cka)
 
 
 def _read_gap(gap: float) -> tuple[str, str]:
-    if gap <= 0.02:
-        return "task kept", "good"
-    if gap <= 0.1:
-        return "some loss", "warn"
-    return "task degraded", "bad"
+    return _band("gap", gap)
 
 
 # ---------------------------------------------------------------- metric cells
