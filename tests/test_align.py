@@ -418,7 +418,8 @@ def test_acceptance_on_workbench_scenes(tmp_path):
     assert after["relative_drift"] <= 0.7 * before["relative_drift"]
     # The issue also asks for a 0.15 absolute drop of the held-out domain accuracy. Measured
     # 0.989 -> 0.956 with the defaults (0.978 with the earlier paired weight 0.1): no setting
-    # in align_encoder's tuning table went below 0.95, most likely because the last block
+    # in align_encoder's tuning table went below 0.917, not even a stronger adversary (more
+    # discriminator updates per step, standardised input), most likely because the last block
     # of an encoder that never saw clutter cannot remove it from the pooled features (the
     # clutter-augmented encoder, trained on clutter in every layer, still scores 0.958).
     # Asserted here is what is met: the accuracy falls.
