@@ -255,8 +255,7 @@ def _write_outputs(result, *, json_path=None, report_path=None, drift_csv=None, 
         atomic_write_json(json_path, result)
         click.echo(f"result JSON: {json_path}")
     if drift_csv:
-        lines = ["file,relative_drift"] + [f"{_csv_cell(p['name'])},{'' if p['drift'] is None else format(p['drift'], '.6f')}" for p in result.get("pairs", [])]
-        atomic_write_text(drift_csv, "\n".join(lines) + "\n")
+        atomic_write_text(drift_csv, _drift_table(result.get("pairs", [])))
         click.echo(f"per-pair drift: {drift_csv}")
     if report_path:
         from .report.html import write_report
@@ -265,9 +264,16 @@ def _write_outputs(result, *, json_path=None, report_path=None, drift_csv=None, 
         click.echo(f"report: {report_path}")
 
 
-def _csv_cell(text):
-    text = str(text)
-    return '"' + text.replace('"', '""') + '"' if any(c in text for c in ',"\n') else text
+def _drift_table(pairs) -> str:
+    """Per-pair drift as CSV text (file, relative_drift); an empty cell where not computable."""
+    import csv
+    import io
+
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(["file", "relative_drift"])
+    writer.writerows([p["name"], "" if p["drift"] is None else f"{p['drift']:.6f}"] for p in pairs)
+    return out.getvalue()
 
 
 @cli.command()

@@ -17,9 +17,8 @@ import numpy as np
 
 from . import __version__
 from .errors import GateFailed, InvarianceError
+from .results import RESULT_SCHEMA
 
-RESULT_SCHEMA = "invariance.result/1"
-COMPARISON_SCHEMA = "invariance.comparison/1"
 DEFAULT_LAYER = "output"
 
 # Gate name -> (path into the metrics object, how the value is read). A gate fails when
