@@ -34,6 +34,10 @@ def _run(args):
     return CliRunner().invoke(cli, args, catch_exceptions=False)
 
 
+# The statistics themselves are checked against outside references in test_metrics_*.py
+# and test_scoring.py; here the command-line contract of DESIGN.md (keys, gates, exit codes).
+
+
 def test_features_json_has_the_design_keys(tmp_path):
     a, b = _features(tmp_path, shift=0.8)
     out = tmp_path / "r.json"
