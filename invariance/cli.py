@@ -428,6 +428,8 @@ def report(results, out_path, title, tsne, image_root):
               help="Fraction of pairs never trained on; before/after are measured on them.")
 @click.option("--anchor-weight", type=click.FloatRange(0), default=None, help="Weight of the clean-feature anchor loss.")
 @click.option("--paired-weight", type=click.FloatRange(0), default=None, help="Weight of the paired consistency loss.")
+@click.option("--mean-weight", type=click.FloatRange(0), default=None,
+              help="Weight of the mean-matching loss (whitened distance between the clean and cluttered mean features).")
 @click.option("--task-weight", type=click.FloatRange(0), default=None, help="Weight of the task heads on clean labels.")
 @click.option("--learning-rate", type=click.FloatRange(0, min_open=True), default=None, help="Initial learning rate.")
 @click.option("--guard-margin", type=click.FloatRange(0, 1), default=None,
@@ -437,14 +439,15 @@ def report(results, out_path, title, tsne, image_root):
 @click.option("--permutations", type=click.IntRange(1, 1_000_000), default=1000, show_default=True)
 @_run_options
 @_handle_errors
-def align(data, spec, weights, out_path, steps, minutes, train_from, held_out, anchor_weight, paired_weight, task_weight,
-          learning_rate, guard_margin, json_path, report_path, permutations, seed, image_size, device, batch_size,
+def align(data, spec, weights, out_path, steps, minutes, train_from, held_out, anchor_weight, paired_weight, mean_weight,
+          task_weight, learning_rate, guard_margin, json_path, report_path, permutations, seed, image_size, device, batch_size,
           cache_dir, no_cache, skip_unpaired, quiet):
     """Briefly retrain the encoder's last block(s) so clutter no longer separates its features.
 
     Gradient-reversal adversarial training (Ganin & Lempitsky 2015) against a small domain
-    discriminator, with an anchor that keeps clean features close to the original encoder's
-    and a task head on clean labels. A held-out share of the pairs is never trained on;
+    discriminator, with an anchor that keeps clean features close to the original encoder's,
+    a task head on clean labels, and paired and mean-matching terms that pull cluttered
+    features onto the clean ones. A held-out share of the pairs is never trained on;
     before/after are measured there. Ctrl-C keeps the best checkpoint so far.
     """
     from . import pipeline
@@ -455,7 +458,7 @@ def align(data, spec, weights, out_path, steps, minutes, train_from, held_out, a
     try:
         result = pipeline.align_dataset(
             data, spec, weights=weights, out=out_path, steps=steps, minutes=minutes, train_from=train_from,
-            held_out_fraction=held_out, anchor_weight=anchor_weight, paired_weight=paired_weight,
+            held_out_fraction=held_out, anchor_weight=anchor_weight, paired_weight=paired_weight, mean_weight=mean_weight,
             task_weight=task_weight, learning_rate=learning_rate, guard_margin=guard_margin, seed=seed,
             image_size=image_size, device=device, batch_size=batch_size, skip_unpaired=skip_unpaired,
             permutations=permutations, progress=not quiet,

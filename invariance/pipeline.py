@@ -296,6 +296,7 @@ def align_dataset(
     held_out_fraction: float = 0.3,
     anchor_weight: float | None = None,
     paired_weight: float | None = None,
+    mean_weight: float | None = None,
     task_weight: float | None = None,
     learning_rate: float | None = None,
     guard_margin: float | None = None,
@@ -320,8 +321,8 @@ def align_dataset(
 
     encoder = load_encoder(spec, weights=weights, device=device, image_size=image_size)
     # Options left as None take the library's defaults (documented in align_encoder).
-    optional = {"anchor_weight": anchor_weight, "paired_weight": paired_weight, "minutes": minutes,
-                "train_from": train_from, "steps": steps, "task_weight": task_weight,
+    optional = {"anchor_weight": anchor_weight, "paired_weight": paired_weight, "mean_weight": mean_weight,
+                "minutes": minutes, "train_from": train_from, "steps": steps, "task_weight": task_weight,
                 "learning_rate": learning_rate, "guard_margin": guard_margin}
     start = time.perf_counter()
     alignment = align_encoder(

@@ -224,7 +224,7 @@ def test_paired_loss_divides_each_feature_by_its_clean_variance():
     assert var[-1] < floor < var[:-1].min()  # the case covers both branches
     var = np.maximum(var, floor)
     expected = ((cluttered[batch] - clean[batch]) ** 2 / var).mean()
-    weights = {"anchor": 1.0, "task": 1.0, "paired": 1.0}
+    weights = {"anchor": 1.0, "task": 1.0, "paired": 1.0, "mean": 1.0}
     got = float(run.losses(batch, 0.0, weights)["paired"])
     assert got == pytest.approx(expected, rel=1e-5)
 
@@ -237,7 +237,7 @@ def test_paired_loss_does_not_depend_on_a_feature_scale():
     clean = rng.normal(size=(12, 4))
     cluttered = clean + rng.normal(size=(12, 4))
     scale = np.array([1.0, 1.0, 1.0, 5.0])
-    weights = {"anchor": 1.0, "task": 1.0, "paired": 1.0}
+    weights = {"anchor": 1.0, "task": 1.0, "paired": 1.0, "mean": 1.0}
     batch = np.arange(8)
     losses = [
         float(_identity_run(torch.tensor(c * k, dtype=torch.float32), torch.tensor(x * k, dtype=torch.float32))
@@ -245,6 +245,57 @@ def test_paired_loss_does_not_depend_on_a_feature_scale():
         for c, x, k in ((clean, cluttered, 1.0), (clean, cluttered, scale))
     ]
     assert losses[1] == pytest.approx(losses[0], rel=1e-4)
+
+
+def test_whitening_inverts_the_ledoit_wolf_covariance():
+    # Reference: scikit-learn's LedoitWolf (Ledoit & Wolf, J. Multivariate Analysis 2004)
+    # and its precision_ (the inverse covariance); W @ W.T must equal it. 20 images of 30
+    # features: the sample covariance is singular, the shrunk one is not.
+    from sklearn.covariance import LedoitWolf
+
+    features = np.random.default_rng(2).normal(size=(20, 30)) * np.linspace(0.1, 3.0, 30)
+    w = align._whitening(torch.tensor(features, dtype=torch.float32)).double().numpy()
+    precision = LedoitWolf().fit(features).precision_
+    assert np.allclose(w @ w.T, precision, rtol=1e-3, atol=1e-3 * np.abs(precision).max())
+
+
+def test_mean_matching_loss_is_the_squared_mahalanobis_distance_of_the_means():
+    # Reference: scipy.spatial.distance.mahalanobis with VI the inverse of scikit-learn's
+    # Ledoit-Wolf covariance of the original clean features; the loss is its square divided
+    # by the feature dimension (linear-kernel MMD^2 of whitened features, Gretton et al.,
+    # JMLR 2012, section 2).
+    from scipy.spatial.distance import mahalanobis
+    from sklearn.covariance import LedoitWolf
+
+    rng = np.random.default_rng(3)
+    clean = rng.normal(size=(40, 6)) @ rng.normal(size=(6, 6))  # correlated features
+    cluttered = clean + rng.normal(size=(40, 6)) + np.array([0.5, 0.0, -0.3, 0.0, 0.2, 1.0])
+    run = _identity_run(torch.tensor(clean, dtype=torch.float32), torch.tensor(cluttered, dtype=torch.float32))
+    batch = np.array([1, 4, 5, 9, 17, 22, 30])
+    vi = LedoitWolf().fit(clean[run.train_pos]).precision_
+    expected = mahalanobis(cluttered[batch].mean(0), clean[batch].mean(0), vi) ** 2 / clean.shape[1]
+    got = float(run.losses(batch, 0.0, {"anchor": 1.0, "task": 1.0, "paired": 1.0, "mean": 1.0})["mean"])
+    assert got == pytest.approx(expected, rel=1e-3)
+    # Identical views have identical means: no loss.
+    same = _identity_run(torch.tensor(clean, dtype=torch.float32), torch.tensor(clean, dtype=torch.float32))
+    assert float(same.losses(batch, 0.0, {"anchor": 1.0, "task": 1.0, "paired": 1.0, "mean": 1.0})["mean"]) == 0.0
+
+
+def test_mean_term_follows_the_dann_ramp():
+    # The mean term is weighted by lambda_p like the domain term (Ganin et al., JMLR 2016,
+    # sec. 5.2.2): absent at lambda 0, mean_weight * lambda * mean otherwise.
+    rng = np.random.default_rng(4)
+    clean = rng.normal(size=(16, 5))
+    run = _identity_run(torch.tensor(clean, dtype=torch.float32), torch.tensor(clean + 0.7, dtype=torch.float32))
+    batch = np.arange(8)
+    base = {"anchor": 1.0, "task": 1.0, "paired": 1.0}
+    for lam in (0.0, 0.4, 1.0):
+        with torch.no_grad():
+            with_mean = run.losses(batch, lam, {**base, "mean": 5.0})
+            without = run.losses(batch, lam, {**base, "mean": 0.0})
+        expected = float(without["total"]) + 5.0 * lam * float(with_mean["mean"])
+        assert float(with_mean["mean"]) > 0
+        assert float(with_mean["total"]) == pytest.approx(expected, rel=1e-5)
 
 
 # ---------------------------------------------------------------- end to end (small)
@@ -357,8 +408,8 @@ def test_labels_that_do_not_match_the_pairs_are_refused(small_set, random_zoo_en
 
 @pytest.mark.parametrize(
     "option, value",
-    [("steps", 0), ("batch_size", 1), ("minutes", -1.0), ("anchor_weight", -0.5), ("learning_rate", 2.0),
-     ("held_out_fraction", 0.95)],
+    [("steps", 0), ("batch_size", 1), ("minutes", -1.0), ("anchor_weight", -0.5), ("mean_weight", -1.0),
+     ("learning_rate", 2.0), ("held_out_fraction", 0.95)],
 )
 def test_invalid_options_name_the_option(small_set, random_zoo_encoder, tmp_path, option, value):
     with pytest.raises(InvarianceError, match=f"{option}="):
@@ -393,7 +444,7 @@ def test_acceptance_on_workbench_scenes(tmp_path):
     pairs = discover_pairs(tmp_path / "set")
     encoder = load_encoder("python:invariance.zoo:clean_only_encoder", device="cpu")
     start = time.perf_counter()
-    # The default settings (300 steps, 15-90 s on 2 shared cores); the issue's 3-minute
+    # The default settings (800 steps, 40-60 s of training on 2 cores); the issue's 3-minute
     # limit caps a busy machine.
     result = align_encoder(pairs, encoder, out=tmp_path / "aligned.pt", train_from="block3",
                            minutes=3.0, permutations=200, progress=False)
@@ -414,13 +465,8 @@ def test_acceptance_on_workbench_scenes(tmp_path):
     for task in informative:
         assert after[f"probe.{task}.clean"] >= 0.95 * before[f"probe.{task}.clean"], task
         assert after[f"probe.{task}.cluttered"] >= before[f"probe.{task}.cluttered"], task
-    # Issue targets. Scenes move towards their clean twins: at least the 30% drift drop.
+    # Issue targets: at least a 30% drift drop and a 0.15 (absolute) drop of the held-out
+    # domain-classifier accuracy. Measured with the defaults: 0.989 -> 0.683, drift 1.14 ->
+    # 0.56; without the mean-matching term the accuracy only reached 0.956.
     assert after["relative_drift"] <= 0.7 * before["relative_drift"]
-    # The issue also asks for a 0.15 absolute drop of the held-out domain accuracy. Measured
-    # 0.989 -> 0.956 with the defaults (0.978 with the earlier paired weight 0.1): no setting
-    # in align_encoder's tuning table went below 0.917, not even a stronger adversary (more
-    # discriminator updates per step, standardised input), most likely because the last block
-    # of an encoder that never saw clutter cannot remove it from the pooled features (the
-    # clutter-augmented encoder, trained on clutter in every layer, still scores 0.958).
-    # Asserted here is what is met: the accuracy falls.
-    assert after["domain_accuracy"] < before["domain_accuracy"]
+    assert after["domain_accuracy"] <= before["domain_accuracy"] - 0.15
