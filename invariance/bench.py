@@ -186,7 +186,8 @@ def bench_align_step(image_size: int = 128, batch_size: int = 32, steps: int = 5
     cached, against a step that trains the whole network end to end (backward through every
     layer) and against one that re-runs the frozen trunk forward every step (no backward
     through it, the cheapest step without a cache). Each step is the alignment's own: the
-    discriminator through gradient reversal plus the anchor on the original features.
+    discriminator through gradient reversal, the anchor on the original features, and the
+    paired and mean-matching terms between the batch's two halves (as clean and cluttered).
 
     By operation count the cached step is about 0.25x the end-to-end step and 0.5x the
     frozen re-run (layer4 is about a quarter of ResNet-18's forward cost, a backward about
@@ -196,7 +197,7 @@ def bench_align_step(image_size: int = 128, batch_size: int = 32, steps: int = 5
     from torch import nn
     from torch.nn import functional as F
 
-    from .align import DISCRIMINATOR_HIDDEN, gradient_reversal, split_module
+    from .align import DISCRIMINATOR_HIDDEN, _whitening, gradient_reversal, mean_matching_loss, split_module
     from .encoders import load_encoder
 
     torch.manual_seed(0)
@@ -207,13 +208,18 @@ def bench_align_step(image_size: int = 128, batch_size: int = 32, steps: int = 5
         cached = trunk(x)  # what alignment stores once per image
         anchor = tail(cached)
     disc = nn.Sequential(nn.Linear(anchor.shape[1], DISCRIMINATOR_HIDDEN), nn.ReLU(), nn.Linear(DISCRIMINATOR_HIDDEN, 1))
-    domain = torch.cat([torch.zeros(batch_size // 2), torch.ones(batch_size - batch_size // 2)])
+    half = batch_size // 2
+    domain = torch.cat([torch.zeros(half), torch.ones(batch_size - half)])
+    whitening, variance = _whitening(anchor), anchor.var(dim=0).clamp_min(1e-6)
     tail_opt = torch.optim.Adam([*tail.parameters(), *disc.parameters()], lr=1e-5)
     whole_opt = torch.optim.Adam([*module.parameters(), *disc.parameters()], lr=1e-5)
 
     def step(optimizer, features):
         logits = disc(gradient_reversal(features, 1.0)).squeeze(1)
-        loss = F.binary_cross_entropy_with_logits(logits, domain) + F.mse_loss(features, anchor)
+        clean, cluttered = features[:half], features[half : 2 * half]
+        loss = (F.binary_cross_entropy_with_logits(logits, domain) + F.mse_loss(features, anchor)
+                + ((cluttered - clean.detach()) ** 2 / variance).mean()
+                + mean_matching_loss(clean, cluttered, whitening))
         optimizer.zero_grad(set_to_none=True)
         loss.backward()
         optimizer.step()
