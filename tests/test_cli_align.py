@@ -1,0 +1,83 @@
+"""`invariance align` on the command line: the DESIGN.md contract (exit codes, outputs, options).
+
+The alignment itself is checked against outside references in test_align.py; here the
+command's plumbing is checked: every option reaches the library, the checkpoint loads as
+``checkpoint:FILE`` in another command, and bad input leaves nothing behind.
+"""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+import torch
+from click.testing import CliRunner
+
+from invariance.cli import cli
+
+torch.set_num_threads(min(2, torch.get_num_threads()))  # a shared 2-core machine
+
+ENCODER = "python:invariance.zoo:workbench_cnn"  # untrained: no shipped weights needed
+QUICK = ["--steps", "4", "--batch-size", "8", "--permutations", "20", "--quiet"]
+
+
+@pytest.fixture(scope="module")
+def scene_dir(tmp_path_factory):
+    from invariance.scenes import generate_scenes
+
+    root = tmp_path_factory.mktemp("cli_align") / "set"
+    generate_scenes(root, pairs=40, size=64, seed=5, level=2)
+    return root
+
+
+@pytest.fixture(scope="module")
+def aligned(scene_dir, tmp_path_factory):
+    folder = tmp_path_factory.mktemp("cli_align_out")
+    out, result = folder / "aligned.pt", folder / "aligned.json"
+    res = CliRunner().invoke(cli, ["align", str(scene_dir), "--encoder", ENCODER, "--out", str(out),
+                                   "--json", str(result), "--mean-weight", "2.5", "--paired-weight", "0.5",
+                                   "--anchor-weight", "4", "--held-out", "0.3", *QUICK])
+    return {"res": res, "out": out, "json": result, "folder": folder}
+
+
+def test_align_writes_checkpoint_and_result_with_the_given_weights(aligned):
+    res = aligned["res"]
+    assert res.exit_code == 0, res.output
+    assert aligned["out"].is_file()
+    result = json.loads(aligned["json"].read_text())
+    settings = result["alignment"]["settings"]
+    assert (settings["mean_weight"], settings["paired_weight"], settings["anchor_weight"]) == (2.5, 0.5, 4.0)
+    assert settings["steps"] == 4 and result["alignment"]["steps_run"] == 4
+    assert result["alignment"]["held_out_pairs"] == 12  # 30% of 40 pairs
+    assert set(result["alignment"]["curves"]) >= {"loss_mean", "loss_paired", "val_domain_accuracy"}
+    # stdout: before/after and the caution
+    assert "before" in res.output and "after" in res.output and "checkpoint:" in res.output
+    assert "not a certificate" in res.output
+
+
+def test_aligned_checkpoint_is_scored_by_another_command(aligned, scene_dir):
+    result_path = aligned["folder"] / "score.json"
+    res = CliRunner().invoke(cli, ["score", str(scene_dir), "--encoder", f"checkpoint:{aligned['out']}",
+                                   "--json", str(result_path), "--permutations", "20", "--quiet", "--no-cache"])
+    assert res.exit_code == 0, res.output
+    metrics = json.loads(result_path.read_text())["metrics"]
+    assert 0.0 <= metrics["domain_classifier"]["accuracy"] <= 1.0
+
+
+def test_align_refuses_too_few_pairs_and_writes_nothing(tmp_path):
+    from invariance.scenes import generate_scenes
+
+    generate_scenes(tmp_path / "tiny", pairs=12, size=32, seed=1, level=1)
+    out, result = tmp_path / "never.pt", tmp_path / "never.json"
+    res = CliRunner().invoke(cli, ["align", str(tmp_path / "tiny"), "--encoder", ENCODER, "--out", str(out),
+                                   "--json", str(result), *QUICK])
+    assert res.exit_code == 1
+    assert "at least" in res.output and "pairs" in res.output
+    assert not out.exists() and not result.exists()
+
+
+def test_align_rejects_a_negative_weight_as_a_usage_error(scene_dir, tmp_path):
+    res = CliRunner().invoke(cli, ["align", str(scene_dir), "--encoder", ENCODER, "--out", str(tmp_path / "x.pt"),
+                                   "--mean-weight", "-1", *QUICK])
+    assert res.exit_code == 2 and "--mean-weight" in res.output
+    assert not (tmp_path / "x.pt").exists()
