@@ -46,12 +46,13 @@ DISCRIMINATOR_HIDDEN = 64  # one hidden layer suffices against a pooled vector (
 # as much as a confused discriminator's loss (log 2 ~ 0.69). The paired term pulls each
 # cluttered feature onto its own scene's clean feature, per feature standardised (see
 # _Run.losses): it is the most direct lever on drift, but it also moves the clean features
-# through the shared weights, so the anchor must grow with it. Paired 3 with anchor 10 gave
-# the lowest held-out domain accuracy, before the mean term below, on the tuning set (0.956) and on the bundled sample
-# set (0.917 -> 0.800) with every guarded clean probe within 1%; anchor 3 let the sample
-# set's y probe fall 5% and its run turned unstable (guard stop at step 260); paired 10
-# (anchor 1 or 10) and paired 3 at learning rate 3e-3 tripped the clean probe guard within
-# 20 steps; paired 3 with anchor 1 left the domain accuracy at 0.994.
+# through the shared weights, so the anchor must grow with it. Before the mean term below,
+# paired 3 with anchor 10 gave the lowest held-out domain accuracy on the tuning set
+# (0.956) and on the bundled sample set (0.917 -> 0.800) with every guarded clean probe
+# within 1%; anchor 3 let the sample set's y probe fall 5% and its run turned unstable
+# (guard stop at step 260); paired 10 (anchor 1 or 10) and paired 3 at learning rate 3e-3
+# tripped the clean probe guard within 20 steps; paired 3 with anchor 1 left the domain
+# accuracy at 0.994.
 DEFAULT_ANCHOR_WEIGHT = 10.0
 DEFAULT_TASK_WEIGHT = 1.0
 DEFAULT_PAIRED_WEIGHT = 3.0
@@ -474,6 +475,14 @@ def _whitening(features: torch.Tensor) -> torch.Tensor:
     return torch.as_tensor(whitening, dtype=torch.float32, device=features.device)
 
 
+def paired_loss(clean: torch.Tensor, cluttered: torch.Tensor, variance: torch.Tensor) -> torch.Tensor:
+    """Mean over pairs and features of ``(cluttered - clean)^2 / variance``, clean side detached.
+
+    The clean feature is the target each cluttered view is pulled to, not a thing to move.
+    """
+    return ((cluttered - clean.detach()) ** 2 / variance).mean()
+
+
 def mean_matching_loss(clean: torch.Tensor, cluttered: torch.Tensor, whitening: torch.Tensor) -> torch.Tensor:
     """Squared Mahalanobis distance between the two views' mean features, per dimension.
 
@@ -610,7 +619,7 @@ class _Run:
             "domain": F.binary_cross_entropy_with_logits(logits, domain),
             "anchor": ((f_clean - self.f0_clean[batch]) ** 2).mean() / self.scale,
             "task": _task_loss(self.tasks, (f_clean - self.head_input[0]) / self.head_input[1], torch.as_tensor(batch)),
-            "paired": ((f_clut - f_clean.detach()) ** 2 / self.feature_var).mean(),
+            "paired": paired_loss(f_clean, f_clut, self.feature_var),
             "mean": mean_matching_loss(f_clean, f_clut, self.whitening),
         }
         # The mean term is an adaptation loss like the domain term, so it follows the same
@@ -637,16 +646,20 @@ class _Run:
         }
 
 
+# The parts of _Run.losses that are logged as ``loss_<name>`` curves and saved as final losses.
+LOSS_NAMES = ("total", "domain", "anchor", "task", "paired", "mean")
+
+
 def _empty_curves() -> dict:
-    keys = ["step", "discriminator_accuracy", "loss_total", "loss_domain", "loss_anchor", "loss_task",
-            "loss_paired", "loss_mean", "lambda", "learning_rate", "val_domain_accuracy", "val_relative_drift", "val_clean_probe"]
+    keys = ["step", "discriminator_accuracy", *(f"loss_{k}" for k in LOSS_NAMES), "lambda", "learning_rate",
+            "val_domain_accuracy", "val_relative_drift", "val_clean_probe"]
     return {k: [] for k in keys}
 
 
 def _record(curves, step, means, lambda_, lr, val) -> None:
     curves["step"].append(int(step))
     curves["discriminator_accuracy"].append(round(means["discriminator_accuracy"], 6))
-    for key in ("total", "domain", "anchor", "task", "paired", "mean"):
+    for key in LOSS_NAMES:
         curves[f"loss_{key}"].append(round(means[key], 6))
     curves["lambda"].append(round(lambda_, 6))
     curves["learning_rate"].append(float(f"{lr:.6g}"))
@@ -1046,7 +1059,7 @@ def _save(out, encoder, aligned, pairs, settings, info, held_idx) -> None:
         "steps_run": info["steps_run"],
         "best_step": info["best_step"],
         "stopped_because": info["stopped_because"],
-        "final_losses": {k: curves[f"loss_{k}"][-1] for k in ("total", "domain", "anchor", "task", "paired", "mean")},
+        "final_losses": {k: curves[f"loss_{k}"][-1] for k in LOSS_NAMES},
         "held_out_indices": held_idx.tolist(),
     }
     save_checkpoint(out, encoder=encoder, module=aligned, metadata=metadata)

@@ -197,7 +197,8 @@ def bench_align_step(image_size: int = 128, batch_size: int = 32, steps: int = 5
     from torch import nn
     from torch.nn import functional as F
 
-    from .align import DISCRIMINATOR_HIDDEN, _whitening, gradient_reversal, mean_matching_loss, split_module
+    from .align import (DISCRIMINATOR_HIDDEN, _whitening, gradient_reversal, mean_matching_loss, paired_loss,
+                        split_module)
     from .encoders import load_encoder
 
     torch.manual_seed(0)
@@ -218,7 +219,7 @@ def bench_align_step(image_size: int = 128, batch_size: int = 32, steps: int = 5
         logits = disc(gradient_reversal(features, 1.0)).squeeze(1)
         clean, cluttered = features[:half], features[half : 2 * half]
         loss = (F.binary_cross_entropy_with_logits(logits, domain) + F.mse_loss(features, anchor)
-                + ((cluttered - clean.detach()) ** 2 / variance).mean()
+                + paired_loss(clean, cluttered, variance)
                 + mean_matching_loss(clean, cluttered, whitening))
         optimizer.zero_grad(set_to_none=True)
         loss.backward()

@@ -429,7 +429,8 @@ def report(results, out_path, title, tsne, image_root):
 @click.option("--anchor-weight", type=click.FloatRange(0), default=None, help="Weight of the clean-feature anchor loss.")
 @click.option("--paired-weight", type=click.FloatRange(0), default=None, help="Weight of the paired consistency loss.")
 @click.option("--mean-weight", type=click.FloatRange(0), default=None,
-              help="Weight of the mean-matching loss (whitened distance between the clean and cluttered mean features).")
+              help="Weight of the mean-matching loss (whitened distance between the clean and cluttered "
+                   "mean features).")
 @click.option("--task-weight", type=click.FloatRange(0), default=None, help="Weight of the task heads on clean labels.")
 @click.option("--learning-rate", type=click.FloatRange(0, min_open=True), default=None, help="Initial learning rate.")
 @click.option("--guard-margin", type=click.FloatRange(0, 1), default=None,
@@ -439,9 +440,9 @@ def report(results, out_path, title, tsne, image_root):
 @click.option("--permutations", type=click.IntRange(1, 1_000_000), default=1000, show_default=True)
 @_run_options
 @_handle_errors
-def align(data, spec, weights, out_path, steps, minutes, train_from, held_out, anchor_weight, paired_weight, mean_weight,
-          task_weight, learning_rate, guard_margin, json_path, report_path, permutations, seed, image_size, device, batch_size,
-          cache_dir, no_cache, skip_unpaired, quiet):
+def align(data, spec, weights, out_path, steps, minutes, train_from, held_out, anchor_weight, paired_weight,
+          mean_weight, task_weight, learning_rate, guard_margin, json_path, report_path, permutations, seed,
+          image_size, device, batch_size, cache_dir, no_cache, skip_unpaired, quiet):
     """Briefly retrain the encoder's last block(s) so clutter no longer separates its features.
 
     Gradient-reversal adversarial training (Ganin & Lempitsky 2015) against a small domain
@@ -458,7 +459,8 @@ def align(data, spec, weights, out_path, steps, minutes, train_from, held_out, a
     try:
         result = pipeline.align_dataset(
             data, spec, weights=weights, out=out_path, steps=steps, minutes=minutes, train_from=train_from,
-            held_out_fraction=held_out, anchor_weight=anchor_weight, paired_weight=paired_weight, mean_weight=mean_weight,
+            held_out_fraction=held_out, anchor_weight=anchor_weight, paired_weight=paired_weight,
+            mean_weight=mean_weight,
             task_weight=task_weight, learning_rate=learning_rate, guard_margin=guard_margin, seed=seed,
             image_size=image_size, device=device, batch_size=batch_size, skip_unpaired=skip_unpaired,
             permutations=permutations, progress=not quiet,
