@@ -12,6 +12,8 @@ from typing import Iterator
 
 import numpy as np
 
+from .errors import InvarianceError
+
 
 def _json_default(obj):
     if isinstance(obj, np.integer):
@@ -87,3 +89,54 @@ def atomic_directory(path: str | os.PathLike) -> Iterator[Path]:
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
+
+
+def check_writable(path: str | os.PathLike) -> Path:
+    """Fail early when the report cannot be written to ``path``.
+
+    Rendering embeds every figure and takes a while; a bad ``--out`` should fail before
+    that work, not after it.
+
+    Parameters
+    ----------
+    path : path-like
+        The report file to be written.
+
+    Returns
+    -------
+    Path
+        ``path`` as a :class:`~pathlib.Path`.
+
+    Raises
+    ------
+    InvarianceError
+        When ``path`` is a folder, or its folder cannot be created or written to.
+    """
+    path = Path(path)
+    if path.is_dir():
+        raise InvarianceError(f"{path}: is a folder; pass a file name such as {path / 'report.html'}")
+    folder = path.parent
+    ancestor = folder
+    while not ancestor.exists() and ancestor != ancestor.parent:
+        ancestor = ancestor.parent
+    if not ancestor.is_dir():
+        raise InvarianceError(f"{path}: {ancestor} is not a folder; choose an output path inside a writable folder")
+    if ancestor == folder:
+        _probe_write(folder, path)
+    elif not os.access(ancestor, os.W_OK | os.X_OK):
+        raise InvarianceError(f"{path}: cannot create folder under {ancestor}; choose an output path inside a writable folder")
+    if path.exists() and not os.access(path, os.W_OK):
+        raise InvarianceError(f"{path}: file is read-only; choose another output path or make it writable")
+    return path
+
+
+def _probe_write(folder: Path, path: Path) -> None:
+    # os.access is not enough: it says yes to root on a read-only file system.
+    try:
+        fd, probe = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".check", dir=folder)
+    except OSError as exc:
+        raise InvarianceError(
+            f"{path}: cannot write in {folder} ({exc.strerror}); choose an output path inside a writable folder"
+        ) from None
+    os.close(fd)
+    os.unlink(probe)

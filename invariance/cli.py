@@ -74,7 +74,7 @@ def _cache_dir(cache_dir, no_cache):
 
 def _check_output_paths(*paths):
     """Fail before any work when an output file cannot be written (a real test write)."""
-    from .report.html import check_writable
+    from ._io import check_writable
 
     for path in paths:
         if path is not None:

@@ -19,14 +19,40 @@ from invariance.metrics.domain import _check_int, _validate_pairs
 # Labelled pairs below which a held-out score says little (common practice).
 MIN_LABELLED_PAIRS = 10
 
-# Ridge strengths searched by efficient leave-one-out on standardised features; seven
-# decades centred on 1 (common practice).
-RIDGE_ALPHAS = np.logspace(-3, 3, 13)
+# Ridge strengths searched by efficient leave-one-out, half a decade apart from 1e-3 to
+# 1e5: the weak end for informative labels on standardised features, the strong end so a
+# label the features do not predict gets a near-constant model instead of an over-fitted
+# one (common practice). The one grid for every linear probe and task head.
+RIDGE_ALPHAS = tuple(np.logspace(-3, 5, 17))
 
 # scikit-learn's default inverse regularisation for the logistic probe (common practice).
 PROBE_C = 1.0
 
 _MAX_ITER = 2000
+
+
+def make_probe(kind, *, standardise=True):
+    """The one linear probe, unfitted: logistic regression for classes, RidgeCV for numbers.
+
+    Parameters
+    ----------
+    kind : {"classification", "regression"}
+    standardise : bool, default=True
+        Put a StandardScaler in front; ``False`` gives the bare linear model, for callers
+        that standardise themselves (the alignment's warm-started task heads).
+
+    Returns
+    -------
+    estimator
+        A scikit-learn estimator whose ``score`` is accuracy or R^2.
+    """
+    if kind not in ("classification", "regression"):
+        raise InvarianceError(f"kind={kind!r} is not valid; pass 'classification' or 'regression'")
+    if kind == "classification":
+        model = LogisticRegression(C=PROBE_C, max_iter=_MAX_ITER)
+    else:
+        model = RidgeCV(alphas=RIDGE_ALPHAS)
+    return make_pipeline(StandardScaler(), model) if standardise else model
 
 
 def _kind(values):
@@ -84,12 +110,8 @@ def _probe_one(clean, cluttered, values, seed, test_fraction):
             "that both vary; add labelled pairs"
         }
     train, test = idx[pos_train], idx[pos_test]
-    if kind == "classification":
-        model = make_pipeline(StandardScaler(), LogisticRegression(C=PROBE_C, max_iter=_MAX_ITER))
-        score, metric = accuracy_score, "accuracy"
-    else:
-        model = make_pipeline(StandardScaler(), RidgeCV(alphas=RIDGE_ALPHAS))
-        score, metric = r2_score, "r2"
+    model = make_probe(kind)
+    score, metric = (accuracy_score, "accuracy") if kind == "classification" else (r2_score, "r2")
     model.fit(clean[train], y[pos_train])
     on_clean = float(score(y[pos_test], model.predict(clean[test])))
     on_cluttered = float(score(y[pos_test], model.predict(cluttered[test])))

@@ -20,7 +20,7 @@ from typing import Iterable, Mapping, Sequence
 from PIL import Image
 
 import invariance
-from invariance._io import atomic_write_text
+from invariance._io import atomic_write_text, check_writable
 from invariance.errors import InvarianceError
 from invariance.report import plots
 from invariance.results import check_same_dataset, display_name, make_comparison, metric_value, rank_results
@@ -30,45 +30,6 @@ WORST_PAIRS = 6
 EXAMPLE_PAIRS = 3
 CHANCE = 0.5
 _DASH = "\u2013"
-
-
-def check_writable(path: str | os.PathLike) -> Path:
-    """Fail early when the report cannot be written to ``path``.
-
-    Rendering embeds every figure and takes a while; a bad ``--out`` should fail before
-    that work, not after it.
-
-    Parameters
-    ----------
-    path : path-like
-        The report file to be written.
-
-    Returns
-    -------
-    Path
-        ``path`` as a :class:`~pathlib.Path`.
-
-    Raises
-    ------
-    InvarianceError
-        When ``path`` is a folder, or its folder cannot be created or written to.
-    """
-    path = Path(path)
-    if path.is_dir():
-        raise InvarianceError(f"{path}: is a folder; pass a file name such as {path / 'report.html'}")
-    folder = path.parent
-    ancestor = folder
-    while not ancestor.exists() and ancestor != ancestor.parent:
-        ancestor = ancestor.parent
-    if not ancestor.is_dir():
-        raise InvarianceError(f"{path}: {ancestor} is not a folder; choose an output path inside a writable folder")
-    if ancestor == folder:
-        _probe_write(folder, path)
-    elif not os.access(ancestor, os.W_OK | os.X_OK):
-        raise InvarianceError(f"{path}: cannot create folder under {ancestor}; choose an output path inside a writable folder")
-    if path.exists() and not os.access(path, os.W_OK):
-        raise InvarianceError(f"{path}: file is read-only; choose another output path or make it writable")
-    return path
 
 
 def write_report(path: str | os.PathLike, results: Sequence[dict], **kwargs) -> Path:
@@ -200,18 +161,6 @@ def _thumbnail_uri(path: Path) -> str | None:
     except (OSError, ValueError, Image.DecompressionBombError):
         return None
     return plots.to_data_uri(buffer.getvalue())
-
-
-def _probe_write(folder: Path, path: Path) -> None:
-    # os.access is not enough: it says yes to root on a read-only file system.
-    try:
-        fd, probe = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".check", dir=folder)
-    except OSError as exc:
-        raise InvarianceError(
-            f"{path}: cannot write in {folder} ({exc.strerror}); choose an output path inside a writable folder"
-        ) from None
-    os.close(fd)
-    os.unlink(probe)
 
 
 # ---------------------------------------------------------------- formatting
