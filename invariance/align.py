@@ -795,13 +795,16 @@ def _held_out_metrics(pairs, encoder, *, batch_size, seed, permutations) -> dict
     from .encoders import extract_features
     from .scoring import score_features
 
-    clean, cluttered = extract_features(pairs, encoder, batch_size=batch_size, cache_dir=None, progress=False)["output"]
+    from .options import ExtractionOptions, ScoringOptions
+
+    clean, cluttered = extract_features(pairs, encoder, options=ExtractionOptions(batch_size=batch_size),
+                                        progress=False)["output"]
     labels = pairs.labels
     return score_features(
         clean, cluttered,
         tasks=(labels.tasks or None) if labels is not None else None,
         factors=(labels.factors or None) if labels is not None else None,
-        names=list(pairs.names), seed=seed, permutations=permutations,
+        names=list(pairs.names), options=ScoringOptions(seed=seed, permutations=permutations),
     )["metrics"]
 
 

@@ -64,15 +64,14 @@ def bench_extraction(pairs, spec: str = "torchvision:resnet18", *, image_size: i
 
     from .data import load_rgb
     from .encoders import extract_features, load_encoder
+    from .options import ExtractionOptions
 
     encoder = load_encoder(spec, device="cpu", image_size=image_size)
     images = torch.stack([encoder.preprocess(load_rgb(p)) for pair in zip(pairs.clean, pairs.cluttered) for p in pair])
     bare_before = bare_forward_seconds(images, encoder, batch_size)
     with tempfile.TemporaryDirectory() as cache:
-        cold_s, _ = _timed(lambda: extract_features(pairs, encoder, batch_size=batch_size, cache_dir=cache,
-                                                    progress=False))
-        warm_s, _ = _timed(lambda: extract_features(pairs, encoder, batch_size=batch_size, cache_dir=cache,
-                                                    progress=False))
+        cold_s, _ = _timed(lambda: extract_features(pairs, encoder, progress=False, options=ExtractionOptions(batch_size=batch_size, cache_dir=cache)))
+        warm_s, _ = _timed(lambda: extract_features(pairs, encoder, progress=False, options=ExtractionOptions(batch_size=batch_size, cache_dir=cache)))
     bare_after = bare_forward_seconds(images, encoder, batch_size)
     bare_s = (bare_before + bare_after) / 2  # the host is shared: average the bracketing runs
     n_images = len(images)
@@ -83,6 +82,7 @@ def bench_extraction(pairs, spec: str = "torchvision:resnet18", *, image_size: i
 
 def bench_statistics(n_pairs: int = 2000, dim: int = 512, permutations: int = 1000) -> dict:
     """The whole statistics stage (all metrics) on synthetic paired features."""
+    from .options import ScoringOptions
     from .scoring import score_features
 
     rng = np.random.default_rng(0)
@@ -91,20 +91,20 @@ def bench_statistics(n_pairs: int = 2000, dim: int = 512, permutations: int = 10
     cluttered = scene + 0.5 * rng.normal(size=scene.shape).astype(np.float32) + 0.1
     tasks = {"part": np.array(["bolt", "nut", "gear", "washer"])[np.arange(n_pairs) % 4]}
     factors = {"level": (1 + np.arange(n_pairs) % 3).astype(str)}
-    seconds, _ = _timed(lambda: score_features(clean, cluttered, tasks=tasks, factors=factors,
-                                               permutations=permutations, seed=0))
+    seconds, _ = _timed(lambda: score_features(clean, cluttered, tasks=tasks, factors=factors, options=ScoringOptions(permutations=permutations, seed=0)))
     return {"pairs": n_pairs, "dim": dim, "permutations": permutations, "seconds": seconds}
 
 
 _STATS_MEMORY_CHILD = """
 import resource, sys, numpy as np
+from invariance.options import ScoringOptions
 from invariance.scoring import score_features
 n, d = int(sys.argv[1]), int(sys.argv[2])
 rng = np.random.default_rng(0)
 x = rng.normal(size=(n, d)).astype(np.float32)
 y = x + 0.5 * rng.normal(size=(n, d)).astype(np.float32)
 before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-score_features(x, y, permutations=200, seed=0)
+score_features(x, y, options=ScoringOptions(permutations=200, seed=0))
 print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, before)
 """
 
@@ -134,6 +134,7 @@ from pathlib import Path
 from invariance.bench import _peak_rss_kib, _reset_peak_rss
 from invariance.data import PairSet, discover_pairs
 from invariance.encoders import extract_features, load_encoder
+from invariance.options import ExtractionOptions
 n = int(sys.argv[1])
 base = discover_pairs(sys.argv[2])
 idx = [i % len(base) for i in range(n)]
@@ -141,7 +142,7 @@ pairs = PairSet.from_paths([base.clean[i] for i in idx], [base.cluttered[i] for 
 encoder = load_encoder("python:invariance.bench:tiny_512d_encoder", device="cpu")
 extract_features(pairs.subset(range(4)), encoder, progress=False)  # model and libraries loaded
 before = _reset_peak_rss()
-clean, cluttered = extract_features(pairs, encoder, progress=False, batch_size=64)["output"]
+clean, cluttered = extract_features(pairs, encoder, progress=False, options=ExtractionOptions(batch_size=64))["output"]
 print(_peak_rss_kib(), before, clean.shape[1])
 """
 

@@ -48,7 +48,9 @@ from torchvision.transforms import functional as TF
 from invariance import feature_cache
 from invariance._io import atomic_write_bytes
 from invariance.data import load_rgb
-from invariance.errors import InvarianceError
+from invariance.errors import InvalidParameter, InvarianceError
+from invariance.options import ExtractionOptions
+from invariance.progress import as_reporter
 
 # ImageNet channel statistics and the 256 -> 224 resize/crop: common practice, and what
 # torchvision's ImageNet weights use (their ``transforms()`` metadata).
@@ -857,37 +859,13 @@ def _worker_init(_):
     torch.set_num_threads(1)  # the main process owns the cores for the forward pass
 
 
-@dataclass
-class _Progress:
-    total: int
-    label: str
-    enabled: bool
-    _bar: object = None
-
-    def __enter__(self):
-        if self.enabled:
-            import click
-
-            self._bar = click.progressbar(length=self.total, label=self.label, file=sys.stderr).__enter__()
-        return self
-
-    def update(self, n: int):
-        if self._bar is not None:
-            self._bar.update(n)
-
-    def __exit__(self, *exc):
-        if self._bar is not None:
-            self._bar.__exit__(*exc)
-
-
 def extract_features(
     pairs,
     encoder: Encoder,
     layers=None,
     *,
-    batch_size: int = 32,
-    cache_dir=None,
-    progress: bool = True,
+    options: ExtractionOptions | None = None,
+    progress=True,
     num_workers: int | None = None,
 ) -> dict[str, tuple[np.ndarray, np.ndarray]]:
     """Features of every clean and cluttered image, paired row by row.
@@ -900,14 +878,14 @@ def extract_features(
         Graph nodes to tap (see :func:`available_layers`); default ``["output"]``, the
         pooled feature before the head. All layers come from one forward pass. Spatial
         maps are globally average-pooled; token maps (N, T, C) give their class token.
-    batch_size : int
-        Images per forward pass (both views of ``batch_size // 2`` pairs, interleaved, so
-        stopping early never leaves one domain over-represented).
-    cache_dir : path, optional
-        Feature cache folder; ``None`` disables caching. Entries are written only after
-        the whole extraction succeeded.
-    progress : bool
-        Progress bar on stderr.
+    options : ExtractionOptions, optional
+        ``batch_size``: images per forward pass (both views of ``batch_size // 2`` pairs,
+        interleaved, so stopping early never leaves one domain over-represented);
+        ``cache_dir``: feature cache folder, ``None`` disables caching (entries are
+        written only after the whole extraction succeeded). Device and image size are
+        the encoder's, set when it was loaded.
+    progress : bool, callable or Reporter
+        Progress bar on stderr (see :mod:`invariance.progress`).
     num_workers : int, optional
         Image-decoding worker processes; ``None`` uses ``DEFAULT_NUM_WORKERS`` (measured
         in tests/benchmarks/bench_extract.py) when there is more than one batch, else 0.
@@ -922,8 +900,10 @@ def extract_features(
         raise InvarianceError(f"extract_features needs an Encoder from load_encoder, got {type(encoder).__name__}")
     if len(pairs) == 0:
         raise InvarianceError("no image pairs to extract features from; check the data folder")
-    if isinstance(batch_size, bool) or not isinstance(batch_size, (int, np.integer)) or batch_size < 2:
-        raise InvarianceError(f"batch_size must be an integer of at least 2 (one pair), got {batch_size!r}")
+    options = options or ExtractionOptions()
+    if not isinstance(options, ExtractionOptions):
+        raise InvalidParameter("options", f"options={options!r} is not valid; pass an ExtractionOptions")
+    batch_size, cache_dir = options.batch_size, options.cache_dir
     if num_workers is not None and (not isinstance(num_workers, (int, np.integer)) or num_workers < 0):
         raise InvarianceError(f"num_workers must be an integer >= 0, got {num_workers!r}")
     wanted, nodes = _validate_layers(encoder, layers)
@@ -974,7 +954,7 @@ def _extract(pairs, encoder: Encoder, run, layers: list[str], pairs_per_batch: i
         generator=torch.Generator(),  # DataLoader draws a seed; keep the caller's RNG untouched
     )
     out: dict[str, np.ndarray] = {}
-    with _Progress(len(pairs), f"features {encoder.spec}", progress) as bar, torch.inference_mode():
+    with as_reporter(progress).bar(len(pairs), f"features {encoder.spec}") as bar, torch.inference_mode():
         for indices, batch in loader:
             if indices is None:
                 raise InvarianceError(batch)

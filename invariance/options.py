@@ -57,7 +57,7 @@ class ExtractionOptions:
         object.__setattr__(self, "image_size", check_int("image_size", self.image_size, low=MIN_IMAGE_SIZE,
                                                          high=MAX_IMAGE_SIZE, allow_none=True))
         check_choice("device", self.device, DEVICES)
-        object.__setattr__(self, "batch_size", check_int("batch_size", self.batch_size, low=1, high=4096))
+        object.__setattr__(self, "batch_size", check_int("batch_size", self.batch_size, low=2, high=4096))
         object.__setattr__(self, "cache_dir", _as_path(self.cache_dir, "cache_dir"))
         check_bool("skip_unpaired", self.skip_unpaired)
 

@@ -67,7 +67,9 @@ def environment_info(*, seed: int, device: str | None = None, command: str | Non
 
 
 def _scoring_kwargs(seed, permutations, folds, tsne=False):
-    return {"seed": seed, "permutations": permutations, "folds": folds, "tsne": tsne}
+    from .options import ScoringOptions
+
+    return {"options": ScoringOptions(seed=seed, permutations=permutations, folds=folds, tsne=tsne)}
 
 
 def _labels_of(pairs):
@@ -124,8 +126,11 @@ def score_dataset(
         encoder = load_encoder(spec, weights=weights, device=device, image_size=image_size)
     layer_list = list(layers) if layers else [DEFAULT_LAYER]
     start = time.perf_counter()
+    from .options import ExtractionOptions
+
     features = extract_features(
-        pairs, encoder, layers=layer_list, batch_size=batch_size, cache_dir=cache_dir, progress=progress
+        pairs, encoder, layers=layer_list, options=ExtractionOptions(batch_size=batch_size, cache_dir=cache_dir),
+        progress=progress,
     )
     timings["extract"] = time.perf_counter() - start
     start = time.perf_counter()

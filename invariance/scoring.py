@@ -15,7 +15,8 @@ import numpy as np
 from sklearn.decomposition import PCA
 from threadpoolctl import threadpool_limits
 
-from invariance.errors import InvarianceError
+from invariance.errors import InvalidParameter, InvarianceError
+from invariance.options import ScoringOptions
 from invariance.metrics import cka as _cka
 from invariance.metrics import domain as _domain
 from invariance.metrics import drift as _drift
@@ -48,10 +49,12 @@ def _min_pairs(folds):
     return max(_domain.MIN_PAIRS_PER_FOLD * folds, _mmd.MIN_PAIRS)
 
 
-def _check_args(folds, seed, permutations):
-    _domain._check_int("folds", folds, 2)
-    _domain._check_int("permutations", permutations, 1)
-    _domain._check_int("seed", seed, 0)
+def _scoring_options(options):
+    if options is None:
+        return ScoringOptions()
+    if not isinstance(options, ScoringOptions):
+        raise InvalidParameter("options", f"options={options!r} is not valid; pass a ScoringOptions")
+    return options
 
 
 def _check_columns(kind, columns, n):
@@ -288,10 +291,7 @@ def score_features(
     tasks=None,
     factors=None,
     names=None,
-    seed=0,
-    permutations=1000,
-    folds=5,
-    tsne=False,
+    options=None,
 ):
     """Every invariance metric on paired clean / cluttered features.
 
@@ -307,14 +307,10 @@ def score_features(
         metric is repeated on the pairs that share each value.
     names : sequence of str, optional
         A name per pair for the per-pair drift list; default the row index.
-    seed : int, default=0
-        Seed of every split, permutation, bootstrap and subsample.
-    permutations : int, default=1000
-        Permutations of the MMD test.
-    folds : int, default=5
-        Folds of the domain classifier.
-    tsne : bool, default=False
-        Also embed the projection's points with t-SNE (``projection["tsne"]``); slower.
+    options : ScoringOptions, optional
+        Seed (every split, permutation, bootstrap and subsample), MMD permutations,
+        domain-classifier folds and whether to add a t-SNE view (``projection["tsne"]``);
+        default ``ScoringOptions()``.
 
     Returns
     -------
@@ -330,9 +326,10 @@ def score_features(
         Bad shapes, NaN or inf rows, fewer pairs than the metrics need, or label and
         name lists of the wrong length.
     """
-    _check_args(folds, seed, permutations)
+    options = _scoring_options(options)
     with threadpool_limits(limits=_THREADS):
-        result = _score(clean, cluttered, tasks, factors, names, seed, permutations, folds, tsne)
+        result = _score(clean, cluttered, tasks, factors, names, options.seed, options.permutations,
+                        options.folds, options.tsne)
     result = _plain(result)
     _check_finite(result)
     return result

@@ -13,6 +13,7 @@ import skimage.data
 from sklearn.datasets import load_digits
 from skimage.transform import resize
 
+from invariance.options import ScoringOptions
 from invariance.scoring import describe_metrics, score_features
 
 N_PAIRS = 300
@@ -62,9 +63,7 @@ def digits_pairs():
 
 def test_blended_digits_show_a_large_significant_gap(digits_pairs):
     clean, cluttered, labels = digits_pairs
-    result = score_features(
-        clean, cluttered, tasks={"digit": labels}, seed=0, permutations=200, folds=5
-    )
+    result = score_features(clean, cluttered, tasks={"digit": labels}, options=ScoringOptions(seed=0, permutations=200, folds=5))
     m = result["metrics"]
     assert m["domain_classifier"]["accuracy"] > 0.95
     assert m["domain_classifier"]["ci"][0] > 0.9
@@ -79,9 +78,7 @@ def test_blended_digits_show_a_large_significant_gap(digits_pairs):
 
 def test_identical_sets_show_no_gap(digits_pairs):
     clean, _, labels = digits_pairs
-    m = score_features(
-        clean, clean.copy(), tasks={"digit": labels}, seed=0, permutations=200, folds=5
-    )["metrics"]
+    m = score_features(clean, clean.copy(), tasks={"digit": labels}, options=ScoringOptions(seed=0, permutations=200, folds=5))["metrics"]
     # identical rows get identical decision values: one of each pair is right
     assert m["domain_classifier"]["accuracy"] == pytest.approx(0.5)
     assert m["domain_classifier"]["p_value"] > 0.4

@@ -16,6 +16,7 @@ from torchvision import transforms as T
 
 from invariance import encoders
 from invariance.data import PairSet, load_rgb
+from invariance.options import ExtractionOptions
 from invariance.encoders import Preprocess, extract_features, load_encoder, save_checkpoint
 from invariance.errors import InvarianceError
 
@@ -212,17 +213,17 @@ def test_random_init_is_reproducible_and_layer_taps_match_manual(pairs, resnet18
 
 
 def test_rows_follow_pair_order_and_batching(pairs, resnet18):
-    full = extract_features(pairs, resnet18, batch_size=4, progress=False)["output"]
+    full = extract_features(pairs, resnet18, progress=False, options=ExtractionOptions(batch_size=4))["output"]
     order = [3, 0, 4]
-    part = extract_features(pairs.subset(order), resnet18, batch_size=2, progress=False)["output"]
+    part = extract_features(pairs.subset(order), resnet18, progress=False, options=ExtractionOptions(batch_size=2))["output"]
     np.testing.assert_allclose(part[0], full[0][order], rtol=1e-4, atol=1e-5)
     np.testing.assert_allclose(part[1], full[1][order], rtol=1e-4, atol=1e-5)
     assert not np.allclose(full[0], full[1])  # clean and cluttered rows are not mixed up
 
 
 def test_worker_processes_give_the_same_features(pairs, resnet18):
-    main = extract_features(pairs, resnet18, batch_size=4, progress=False, num_workers=0)["output"]
-    workers = extract_features(pairs, resnet18, batch_size=4, progress=False, num_workers=1)["output"]
+    main = extract_features(pairs, resnet18, progress=False, num_workers=0, options=ExtractionOptions(batch_size=4))["output"]
+    workers = extract_features(pairs, resnet18, progress=False, num_workers=1, options=ExtractionOptions(batch_size=4))["output"]
     np.testing.assert_allclose(main[0], workers[0], rtol=1e-5, atol=1e-6)
     np.testing.assert_allclose(main[1], workers[1], rtol=1e-5, atol=1e-6)
 
@@ -500,8 +501,8 @@ def test_resolve_device():
 
 
 def test_extract_parameters_are_validated(pairs, resnet18):
-    with pytest.raises(InvarianceError, match="batch_size must be an integer of at least 2"):
-        extract_features(pairs, resnet18, batch_size=1)
+    with pytest.raises(InvarianceError, match="batch_size=1 is not valid; pass an integer from 2"):
+        extract_features(pairs, resnet18, options=ExtractionOptions(batch_size=1))
     with pytest.raises(InvarianceError, match="num_workers must be an integer >= 0"):
         extract_features(pairs, resnet18, num_workers=-1)
     with pytest.raises(InvarianceError, match="non-empty list of node names"):

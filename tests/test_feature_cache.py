@@ -14,6 +14,7 @@ from PIL import Image
 
 from invariance import feature_cache
 from invariance.data import PairSet
+from invariance.options import ExtractionOptions
 from invariance.encoders import extract_features, load_encoder
 from invariance.errors import InvarianceError
 
@@ -60,10 +61,10 @@ def _entries(cache):
 def test_second_call_is_served_from_cache(tmp_path, pairs, encoder):
     cache = tmp_path / "cache"
     counter = _Forwards(encoder.module.conv1)
-    first = extract_features(pairs, encoder, cache_dir=cache, progress=False)["output"]
+    first = extract_features(pairs, encoder, progress=False, options=ExtractionOptions(cache_dir=cache))["output"]
     assert counter.calls == 1  # 4 pairs fit one batch of 8 images
     assert len(_entries(cache)) == 1
-    second = extract_features(pairs, encoder, cache_dir=cache, progress=False)["output"]
+    second = extract_features(pairs, encoder, progress=False, options=ExtractionOptions(cache_dir=cache))["output"]
     assert counter.calls == 1
     np.testing.assert_array_equal(first[0], second[0])
     np.testing.assert_array_equal(first[1], second[1])
@@ -72,7 +73,7 @@ def test_second_call_is_served_from_cache(tmp_path, pairs, encoder):
 
 def test_entry_header_describes_its_content(tmp_path, pairs, encoder):
     cache = tmp_path / "cache"
-    clean, cluttered = extract_features(pairs, encoder, cache_dir=cache, progress=False)["output"]
+    clean, cluttered = extract_features(pairs, encoder, progress=False, options=ExtractionOptions(cache_dir=cache))["output"]
     (entry,) = _entries(cache)
     with np.load(entry, allow_pickle=False) as npz:
         header = json.loads(bytes(npz["header"]).decode())
@@ -89,11 +90,11 @@ def test_entry_header_describes_its_content(tmp_path, pairs, encoder):
 
 def test_changed_image_content_misses(tmp_path, pairs, encoder):
     cache = tmp_path / "cache"
-    before = extract_features(pairs, encoder, cache_dir=cache, progress=False)["output"]
+    before = extract_features(pairs, encoder, progress=False, options=ExtractionOptions(cache_dir=cache))["output"]
     Image.fromarray(np.full((36, 36, 3), 200, np.uint8)).save(pairs.cluttered[1])
     changed = PairSet.from_paths(pairs.clean, pairs.cluttered)  # content hash is computed once per set
     counter = _Forwards(encoder.module.conv1)
-    after = extract_features(changed, encoder, cache_dir=cache, progress=False)["output"]
+    after = extract_features(changed, encoder, progress=False, options=ExtractionOptions(cache_dir=cache))["output"]
     assert counter.calls == 1 and len(_entries(cache)) == 2
     np.testing.assert_array_equal(before[0], after[0])
     assert not np.allclose(before[1][1], after[1][1])
@@ -101,11 +102,11 @@ def test_changed_image_content_misses(tmp_path, pairs, encoder):
 
 def test_changed_weights_miss_even_when_trained_in_place(tmp_path, pairs, encoder):
     cache = tmp_path / "cache"
-    before = extract_features(pairs, encoder, cache_dir=cache, progress=False)["output"]
+    before = extract_features(pairs, encoder, progress=False, options=ExtractionOptions(cache_dir=cache))["output"]
     with torch.no_grad():
         encoder.module.layer4[1].conv2.weight.mul_(-1.0)
     counter = _Forwards(encoder.module.conv1)
-    after = extract_features(pairs, encoder, cache_dir=cache, progress=False)["output"]
+    after = extract_features(pairs, encoder, progress=False, options=ExtractionOptions(cache_dir=cache))["output"]
     assert counter.calls == 1 and len(_entries(cache)) == 2
     assert not np.allclose(before[0], after[0])
 
@@ -119,37 +120,37 @@ def test_weights_file_changes_the_key(tmp_path, pairs):
             state = torchvision.models.resnet18().state_dict()
         torch.save(state, tmp_path / "w.pt")
         enc = load_encoder("torchvision:resnet18", weights=tmp_path / "w.pt", device="cpu", image_size=SIZE)
-        results.append(extract_features(pairs, enc, cache_dir=cache, progress=False)["output"][0])
+        results.append(extract_features(pairs, enc, progress=False, options=ExtractionOptions(cache_dir=cache))["output"][0])
     assert len(_entries(cache)) == 2
     assert not np.allclose(results[0], results[1])
 
 
 def test_each_layer_has_its_own_entry(tmp_path, pairs, encoder):
     cache = tmp_path / "cache"
-    extract_features(pairs, encoder, cache_dir=cache, progress=False)
+    extract_features(pairs, encoder, progress=False, options=ExtractionOptions(cache_dir=cache))
     counter = _Forwards(encoder.module.conv1)
-    feats = extract_features(pairs, encoder, ["output", "layer1"], cache_dir=cache, progress=False)
+    feats = extract_features(pairs, encoder, ["output", "layer1"], progress=False, options=ExtractionOptions(cache_dir=cache))
     assert counter.calls == 1 and len(_entries(cache)) == 2
     assert feats["layer1"][0].shape == (4, 64)
-    again = extract_features(pairs, encoder, ["layer1", "output"], cache_dir=cache, progress=False)
+    again = extract_features(pairs, encoder, ["layer1", "output"], progress=False, options=ExtractionOptions(cache_dir=cache))
     assert counter.calls == 1
     np.testing.assert_array_equal(again["layer1"][0], feats["layer1"][0])
 
 
 def test_garbage_entry_is_deleted_and_rebuilt(tmp_path, pairs, encoder):
     cache = tmp_path / "cache"
-    good = extract_features(pairs, encoder, cache_dir=cache, progress=False)["output"]
+    good = extract_features(pairs, encoder, progress=False, options=ExtractionOptions(cache_dir=cache))["output"]
     (entry,) = _entries(cache)
     entry.write_bytes(b"PK\x03\x04 not really a zip")
     with pytest.warns(RuntimeWarning, match="unreadable.*extracting again"):
-        rebuilt = extract_features(pairs, encoder, cache_dir=cache, progress=False)["output"]
+        rebuilt = extract_features(pairs, encoder, progress=False, options=ExtractionOptions(cache_dir=cache))["output"]
     np.testing.assert_array_equal(good[0], rebuilt[0])
     assert feature_cache.load(cache, entry.stem, rows=4, content_hash=pairs.content_hash()) is not None
 
 
 def test_edited_arrays_fail_the_checksum(tmp_path, pairs, encoder):
     cache = tmp_path / "cache"
-    good = extract_features(pairs, encoder, cache_dir=cache, progress=False)["output"]
+    good = extract_features(pairs, encoder, progress=False, options=ExtractionOptions(cache_dir=cache))["output"]
     (entry,) = _entries(cache)
     with np.load(entry, allow_pickle=False) as npz:
         parts = {name: np.array(npz[name]) for name in npz.files}
@@ -159,14 +160,14 @@ def test_edited_arrays_fail_the_checksum(tmp_path, pairs, encoder):
     entry.write_bytes(buf.getvalue())
     counter = _Forwards(encoder.module.conv1)
     with pytest.warns(RuntimeWarning, match="checksum mismatch"):
-        rebuilt = extract_features(pairs, encoder, cache_dir=cache, progress=False)["output"]
+        rebuilt = extract_features(pairs, encoder, progress=False, options=ExtractionOptions(cache_dir=cache))["output"]
     assert counter.calls == 1
     np.testing.assert_array_equal(good[0], rebuilt[0])
 
 
 def test_entry_for_other_images_is_stale(tmp_path, pairs, encoder):
     cache = tmp_path / "cache"
-    extract_features(pairs, encoder, cache_dir=cache, progress=False)
+    extract_features(pairs, encoder, progress=False, options=ExtractionOptions(cache_dir=cache))
     (entry,) = _entries(cache)
     with pytest.warns(RuntimeWarning, match="stale"):
         assert feature_cache.load(cache, entry.stem, rows=4, content_hash="0" * 64) is None
@@ -180,7 +181,7 @@ def test_nothing_is_cached_when_extraction_fails(tmp_path, pairs, encoder):
     cache = tmp_path / "cache"
     pairs.cluttered[3].write_bytes(b"broken")
     with pytest.raises(InvarianceError, match="s3.png"):
-        extract_features(pairs, encoder, ["output", "layer2"], batch_size=2, cache_dir=cache, progress=False)
+        extract_features(pairs, encoder, ["output", "layer2"], progress=False, options=ExtractionOptions(batch_size=2, cache_dir=cache))
     assert _entries(cache) == []
 
 

@@ -7,6 +7,7 @@ import pytest
 
 from invariance.errors import InvarianceError
 from invariance.metrics.drift import paired_drift
+from invariance.options import ScoringOptions
 from invariance.scoring import (
     _check_finite,
     _projection,
@@ -38,9 +39,7 @@ def scored():
         "level": np.repeat([1.0, 2.0], 24),
     }
     names = [f"scene_{i:03d}.png" for i in range(48)]
-    result = score_features(
-        clean, cluttered, tasks=tasks, factors=factors, names=names, seed=2, **FAST
-    )
+    result = score_features(clean, cluttered, tasks=tasks, factors=factors, names=names, options=ScoringOptions(seed=2, **FAST))
     return clean, cluttered, tasks, factors, names, result, rng
 
 
@@ -73,7 +72,7 @@ def test_breakdowns_per_factor_value(scored):
 def test_breakdown_equals_scoring_the_subset(scored):
     clean, cluttered, *_, result, _ = scored
     wood = result["breakdowns"]["factor_background"]["wood"]["metrics"]
-    alone = score_features(clean[:40], cluttered[:40], seed=2, **FAST)["metrics"]
+    alone = score_features(clean[:40], cluttered[:40], options=ScoringOptions(seed=2, **FAST))["metrics"]
     assert wood["domain_classifier"] == alone["domain_classifier"]
     assert wood["mmd"] == alone["mmd"] and wood["cka"] == alone["cka"]
 
@@ -88,8 +87,8 @@ def test_pairs_carry_names_and_drift(scored):
 def test_same_inputs_and_seed_give_identical_json():
     clean, cluttered = _pairs(n=30, seed=3, shift=0.2)
     tasks = {"t": clean[:, 0].copy()}
-    a = score_features(clean, cluttered, tasks=tasks, seed=7, **FAST)
-    b = score_features(clean.copy(), cluttered.copy(), tasks=tasks, seed=7, **FAST)
+    a = score_features(clean, cluttered, tasks=tasks, options=ScoringOptions(seed=7, **FAST))
+    b = score_features(clean.copy(), cluttered.copy(), tasks=tasks, options=ScoringOptions(seed=7, **FAST))
     assert json.dumps(a, sort_keys=True) == json.dumps(b, sort_keys=True)
 
 
@@ -107,7 +106,7 @@ def test_projection_is_pca_of_both_domains():
 
 def test_constant_features_never_crash_or_emit_nan():
     clean = np.ones((20, 4))
-    result = score_features(clean, clean.copy(), **FAST)
+    result = score_features(clean, clean.copy(), options=ScoringOptions(**FAST))
     assert "not_computable" in result["metrics"]["mmd"]
     assert "not_computable" in result["metrics"]["cka"]
     assert "not_computable" in result["projection"]
@@ -118,7 +117,7 @@ def test_constant_features_never_crash_or_emit_nan():
 def test_duplicate_rows_warn():
     clean, cluttered = _pairs(n=20, seed=5)
     clean[5] = clean[4]
-    result = score_features(clean, cluttered, **FAST)
+    result = score_features(clean, cluttered, options=ScoringOptions(**FAST))
     assert any("repeat" in w for w in result["warnings"])
 
 
@@ -193,9 +192,9 @@ def test_readings_say_what_the_numbers_mean(scored):
     assert "separates the domains" in domain[3] and domain[1].endswith("%")
     assert any(name.startswith("probe colour") for name in names)
     clean, _ = _pairs(n=20, seed=9)
-    same = describe_metrics(score_features(clean, clean.copy(), **FAST)["metrics"])
+    same = describe_metrics(score_features(clean, clean.copy(), options=ScoringOptions(**FAST))["metrics"])
     assert "no evidence" in same[0][3]
     assert "no detectable difference" in same[1][3]
-    flat = score_features(np.ones((20, 3)), np.ones((20, 3)), **FAST)
+    flat = score_features(np.ones((20, 3)), np.ones((20, 3)), options=ScoringOptions(**FAST))
     constant = describe_metrics(flat["metrics"])
     assert ("linear CKA", "n/a") == constant[-1][:2]

@@ -24,6 +24,7 @@ sys.path.insert(0, str(ROOT))
 from invariance import encoders  # noqa: E402
 from invariance.bench import bare_forward_seconds  # noqa: E402
 from invariance.data import discover_pairs, load_rgb  # noqa: E402
+from invariance.options import ExtractionOptions  # noqa: E402
 
 SPEC = "torchvision:resnet18"
 BATCH = 32
@@ -48,7 +49,7 @@ def main() -> None:
     tensors = torch.stack([enc.preprocess(load_rgb(p)) for pair in zip(pairs.clean, pairs.cluttered) for p in pair])
     # The machine is shared: time the bare pass before and after and compare with their mean.
     bare_before = bare_forward_seconds(tensors, enc, BATCH)
-    took = {w: _timed(lambda: encoders.extract_features(pairs, enc, batch_size=BATCH, progress=False, num_workers=w))
+    took = {w: _timed(lambda: encoders.extract_features(pairs, enc, progress=False, num_workers=w, options=ExtractionOptions(batch_size=BATCH)))
             for w in args.workers}
     bare = (bare_before + bare_forward_seconds(tensors, enc, BATCH)) / 2
     images = len(tensors)
