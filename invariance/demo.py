@@ -15,6 +15,8 @@ from pathlib import Path
 from . import SAFETY_CAUTION
 from ._io import atomic_write_json
 from .errors import InvarianceError
+from .options import AlignmentOptions, EncoderEntry, ExtractionOptions, ScoringOptions
+from .progress import as_reporter
 
 SAMPLE_COMMAND = "invariance scenes sample_images --pairs 200 --size 128 --seed 7"
 SAMPLE_SEED, SAMPLE_PAIRS, SAMPLE_SIZE = 7, 200, 128
@@ -23,11 +25,11 @@ SAMPLE_SEED, SAMPLE_PAIRS, SAMPLE_SIZE = 7, 200, 128
 EVAL_SEED, EVAL_PAIRS = 2027, 300
 
 DEMO_ENCODERS = (
-    {"spec": "python:invariance.zoo:clean_only_encoder", "name": "workbench CNN, clean-only training"},
-    {"spec": "python:invariance.zoo:clutter_augmented_encoder", "name": "workbench CNN, clutter-augmented"},
+    EncoderEntry("python:invariance.zoo:clean_only_encoder", name="workbench CNN, clean-only training"),
+    EncoderEntry("python:invariance.zoo:clutter_augmented_encoder", name="workbench CNN, clutter-augmented"),
     # ResNet-18 at random init is the floor: features with no training at all. 128 px keeps
-    # it near 180 img/s on 2 cores (REFERENCES.md, measured figures).
-    {"spec": "torchvision:resnet18", "name": "ResNet-18, untrained (floor)", "image_size": 128},
+    # it near 180 img/s on 2 cores (measured with `invariance bench`).
+    EncoderEntry("torchvision:resnet18", name="ResNet-18, untrained (floor)", image_size=128),
 )
 ALIGN_STEPS, ALIGN_MINUTES = 400, 1.5
 
@@ -38,9 +40,8 @@ def sample_images_dir() -> Path | None:
     return candidate if (candidate / "clean").is_dir() else None
 
 
-def run_demo(out_dir="reports/demo", *, progress: bool = True, echo=print, cache_dir=None, seed: int = 0,
-             align_steps: int = ALIGN_STEPS, align_minutes: float = ALIGN_MINUTES, eval_pairs: int = EVAL_PAIRS,
-             permutations: int = 1000) -> list[str]:
+def run_demo(out_dir="demo_report", *, progress=True, cache_dir=None, scoring: ScoringOptions | None = None,
+             alignment: AlignmentOptions | None = None, eval_pairs: int = EVAL_PAIRS) -> list[str]:
     """Run the demo and return the five-line summary.
 
     Parameters
@@ -48,21 +49,32 @@ def run_demo(out_dir="reports/demo", *, progress: bool = True, echo=print, cache
     out_dir : path
         Folder for ``report.html``, ``comparison.json``, ``alignment.json``, the aligned
         checkpoint and the evaluation scenes. Existing demo outputs there are replaced.
+        The shipped example in ``reports/demo/`` is regenerated only when named here.
+    progress : bool, callable or Reporter
+        Stage lines and progress bars (see :mod:`invariance.progress`).
+    cache_dir : path, optional
+        Feature cache for the comparison.
+    scoring, alignment : options, optional
+        Default ``ScoringOptions()`` and ``AlignmentOptions(steps=400, minutes=1.5)``.
+    eval_pairs : int
+        Evaluation scenes generated with a seed the alignment never saw.
     """
     from . import pipeline
     from .scenes import generate_scenes
 
+    scoring = scoring or ScoringOptions()
+    alignment = alignment or AlignmentOptions(steps=ALIGN_STEPS, minutes=ALIGN_MINUTES)
+    reporter = as_reporter(progress)
+    echo = reporter.note
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     started = time.perf_counter()
     sample = _sample_set(out_dir, echo)
 
-    echo(f"[1/3] aligning the clean-only encoder on {sample} (at most {align_minutes} min)")
+    echo(f"[1/3] aligning the clean-only encoder on {sample} (at most {alignment.minutes} min)")
     checkpoint = out_dir / "aligned_clean_only.pt"
-    aligned = pipeline.align_dataset(
-        sample, DEMO_ENCODERS[0]["spec"], out=checkpoint, steps=align_steps, minutes=align_minutes, seed=seed,
-        progress=progress, permutations=permutations,
-    )
+    aligned = pipeline.align_dataset(sample, DEMO_ENCODERS[0].spec, out=checkpoint, alignment=alignment,
+                                     scoring=scoring, progress=reporter)
     atomic_write_json(out_dir / "alignment.json", aligned)
 
     eval_dir = out_dir / "eval_scenes"
@@ -72,15 +84,14 @@ def run_demo(out_dir="reports/demo", *, progress: bool = True, echo=print, cache
         generate_scenes(eval_dir, pairs=eval_pairs, size=SAMPLE_SIZE, seed=EVAL_SEED)
 
     echo("[3/3] comparing four encoders on the evaluation scenes")
-    entries = [*DEMO_ENCODERS, {"spec": f"checkpoint:{checkpoint}", "name": "workbench CNN, clean-only, aligned"}]
-    comparison = pipeline.compare_encoders(
-        eval_dir, entries, seed=seed, permutations=permutations, cache_dir=cache_dir, progress=progress, echo=echo,
-    )
+    entries = [*DEMO_ENCODERS, EncoderEntry(f"checkpoint:{checkpoint}", name="workbench CNN, clean-only, aligned")]
+    comparison = pipeline.compare_encoders(eval_dir, entries, extraction=ExtractionOptions(cache_dir=cache_dir),
+                                           scoring=scoring, progress=reporter)
     aligned_result = comparison["results"][-1]
     aligned_result["alignment"] = aligned["alignment"]
     atomic_write_json(out_dir / "comparison.json", comparison)
 
-    from .report.html import write_report
+    from .report import write_report
 
     report = write_report(out_dir / "report.html", comparison["results"], failures=comparison["failures"],
                           warnings=comparison["warnings"], title="invariance demo: parts-sorting workbench")

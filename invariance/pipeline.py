@@ -1,7 +1,8 @@
-"""The jobs behind the commands, callable from Python: score a data set, compare encoders.
+"""The jobs behind the commands, callable from Python: score, compare, align.
 
-Each function returns a result dict in the ``invariance.result/1`` schema of DESIGN.md;
-the command line only parses options, prints and writes files.
+Each function returns a result dict in the ``invariance.result/1`` schema (see
+``docs/design.md``); the command line only parses options, prints and writes files.
+Options arrive as the frozen objects of :mod:`invariance.options`, validated once.
 """
 
 from __future__ import annotations
@@ -16,18 +17,12 @@ from typing import Sequence
 import numpy as np
 
 from . import __version__
-from .errors import GateFailed, InvarianceError
+from .errors import InvalidParameter, InvarianceError
+from .options import AlignmentOptions, EncoderEntry, ExtractionOptions, ScoringOptions
+from .progress import as_reporter
 from .results import RESULT_SCHEMA
 
 DEFAULT_LAYER = "output"
-
-# Gate name -> (path into the metrics object, how the value is read). A gate fails when
-# the value is above its threshold.
-GATES = {
-    "max_domain_accuracy": ("domain_classifier", "accuracy"),
-    "max_relative_drift": ("paired_drift", "relative_drift"),
-    "max_probe_gap": ("probe", None),
-}
 
 
 def default_cache_dir() -> Path:
@@ -66,10 +61,12 @@ def environment_info(*, seed: int, device: str | None = None, command: str | Non
     return info
 
 
-def _scoring_kwargs(seed, permutations, folds, tsne=False):
-    from .options import ScoringOptions
-
-    return {"options": ScoringOptions(seed=seed, permutations=permutations, folds=folds, tsne=tsne)}
+def _checked(value, cls, name):
+    if value is None:
+        return cls()
+    if not isinstance(value, cls):
+        raise InvalidParameter(name, f"{name}={value!r} is not valid; pass a {cls.__name__}")
+    return value
 
 
 def _labels_of(pairs):
@@ -78,68 +75,8 @@ def _labels_of(pairs):
     return pairs.labels.tasks or None, pairs.labels.factors or None
 
 
-def score_dataset(
-    data,
-    spec: str,
-    *,
-    weights=None,
-    layers: Sequence[str] | None = None,
-    name: str | None = None,
-    seed: int = 0,
-    permutations: int = 1000,
-    folds: int = 5,
-    image_size: int | None = None,
-    device: str = "auto",
-    cache_dir=None,
-    batch_size: int = 32,
-    skip_unpaired: bool = False,
-    progress: bool = True,
-    pairs=None,
-    encoder=None,
-    tsne: bool = False,
-) -> dict:
-    """Extract features of every pair with one encoder and score them.
-
-    Parameters
-    ----------
-    data : str or Path
-        Data set folder (``clean/``, ``cluttered/``, optional ``labels.csv``) or manifest CSV.
-    spec : str
-        Encoder spec (see :func:`invariance.encoders.load_encoder`).
-    layers : list of str, optional
-        Graph nodes to tap; the result's ``metrics`` are those of the last one given and
-        ``layers`` holds every layer's metrics when more than one is given.
-
-    Returns
-    -------
-    dict
-        A result in the ``invariance.result/1`` schema.
-    """
-    from .data import discover_pairs
-
-    timings = {}
-    if pairs is None:
-        pairs = discover_pairs(data, skip_unpaired=skip_unpaired)
-    from .encoders import extract_features, load_encoder  # after the data checks: bad data fails fast
-
-    if encoder is None:
-        encoder = load_encoder(spec, weights=weights, device=device, image_size=image_size)
-    layer_list = list(layers) if layers else [DEFAULT_LAYER]
-    start = time.perf_counter()
-    from .options import ExtractionOptions
-
-    features = extract_features(
-        pairs, encoder, layers=layer_list, options=ExtractionOptions(batch_size=batch_size, cache_dir=cache_dir),
-        progress=progress,
-    )
-    timings["extract"] = time.perf_counter() - start
-    start = time.perf_counter()
-    result = _score_layers(features, layer_list, pairs, seed=seed, permutations=permutations, folds=folds, tsne=tsne)
-    timings["score"] = time.perf_counter() - start
-    result["encoder"] = {**encoder.describe(), "name": name or spec, "layer": layer_list[-1]}
-    result["dataset"] = {**pairs.describe(), "content_hash": pairs.content_hash(), "image_size": _image_size(pairs)}
-    result["environment"] = environment_info(seed=seed, device=str(encoder.device), timings=timings)
-    return result
+def _dataset_info(pairs) -> dict:
+    return {**pairs.describe(), "content_hash": pairs.content_hash(), "image_size": _image_size(pairs)}
 
 
 def _image_size(pairs):
@@ -152,196 +89,213 @@ def _image_size(pairs):
         return None
 
 
-def _score_layers(features: dict, layer_list, pairs, *, seed, permutations, folds, tsne=False) -> dict:
+def _discover(data, extraction: ExtractionOptions):
+    from .data import discover_pairs
+
+    return discover_pairs(data, skip_unpaired=extraction.skip_unpaired)
+
+
+def _load(spec: str, weights, extraction: ExtractionOptions, image_size=None):
+    from .encoders import load_encoder
+
+    return load_encoder(spec, weights=weights, device=extraction.device,
+                        image_size=image_size if image_size is not None else extraction.image_size)
+
+
+def score_dataset(data, spec: str, *, weights=None, layers: Sequence[str] | None = None, name: str | None = None,
+                  extraction: ExtractionOptions | None = None, scoring: ScoringOptions | None = None,
+                  progress=True, pairs=None, encoder=None) -> dict:
+    """Extract features of every pair with one encoder and score them.
+
+    Parameters
+    ----------
+    data : str or Path
+        Data set folder (``clean/``, ``cluttered/``, optional ``labels.csv``) or manifest CSV.
+    spec : str
+        Encoder spec (see :func:`invariance.encoders.load_encoder`).
+    weights : path, optional
+        A local state_dict for a ``torchvision:`` spec.
+    layers : list of str, optional
+        Graph nodes to tap; the result's ``metrics`` are those of the last one given and
+        ``layers`` holds every layer's metrics when more than one is given.
+    name : str, optional
+        Display name of the encoder; default the spec.
+    extraction, scoring : ExtractionOptions, ScoringOptions, optional
+        How images become features and features become statistics.
+    progress : bool, callable or Reporter
+        See :mod:`invariance.progress`.
+    pairs, encoder : optional
+        An already discovered PairSet or loaded Encoder (``compare_encoders`` shares them).
+
+    Returns
+    -------
+    dict
+        A result in the ``invariance.result/1`` schema.
+    """
+    extraction = _checked(extraction, ExtractionOptions, "extraction")
+    scoring = _checked(scoring, ScoringOptions, "scoring")
+    if pairs is None:
+        pairs = _discover(data, extraction)
+    from .encoders import extract_features  # after the data checks: bad data fails fast
+
+    if encoder is None:
+        encoder = _load(spec, weights, extraction)
+    layer_list = list(layers) if layers else [DEFAULT_LAYER]
+    start = time.perf_counter()
+    features = extract_features(pairs, encoder, layers=layer_list, options=extraction, progress=progress)
+    timings = {"extract": time.perf_counter() - start}
+    start = time.perf_counter()
+    result = _score_layers(features, layer_list, pairs, scoring)
+    timings["score"] = time.perf_counter() - start
+    result["encoder"] = {**encoder.describe(), "name": name or spec, "layer": layer_list[-1]}
+    result["dataset"] = _dataset_info(pairs)
+    result["environment"] = environment_info(seed=scoring.seed, device=str(encoder.device), timings=timings)
+    return result
+
+
+def _score_layers(features: dict, layer_list, pairs, scoring: ScoringOptions) -> dict:
+    from dataclasses import replace
+
     from .scoring import score_features
 
     tasks, factors = _labels_of(pairs)
     per_layer = {}
-    primary = None
     for layer in layer_list:
         clean, cluttered = features[layer]
-        scored = score_features(
-            clean, cluttered, tasks=tasks, factors=factors, names=list(pairs.names),
-            **_scoring_kwargs(seed, permutations, folds, tsne and layer == layer_list[-1]),
-        )
-        per_layer[layer] = scored
-        primary = scored
-    result = {"schema": RESULT_SCHEMA, **primary}
+        # t-SNE only for the layer whose projection the report draws
+        options = replace(scoring, tsne=scoring.tsne and layer == layer_list[-1])
+        per_layer[layer] = score_features(clean, cluttered, tasks=tasks, factors=factors, names=list(pairs.names),
+                                          options=options)
+    result = {"schema": RESULT_SCHEMA, **per_layer[layer_list[-1]]}
     if len(layer_list) > 1:
         result["layers"] = {layer: s["metrics"] for layer, s in per_layer.items()}
     return result
 
 
-def score_feature_arrays(
-    clean: np.ndarray,
-    cluttered: np.ndarray,
-    *,
-    tasks=None,
-    factors=None,
-    names=None,
-    seed: int = 0,
-    permutations: int = 1000,
-    folds: int = 5,
-    source: dict | None = None,
-    tsne: bool = False,
-) -> dict:
-    """Score features computed anywhere (rows paired) into a result dict."""
+def score_feature_arrays(clean: np.ndarray, cluttered: np.ndarray, *, tasks=None, factors=None, names=None,
+                         scoring: ScoringOptions | None = None, source: dict | None = None) -> dict:
+    """Score features computed anywhere (rows paired) into a result dict.
+
+    Parameters
+    ----------
+    clean, cluttered : ndarray of shape (n_pairs, d)
+        Paired features; row i of each is the same scene.
+    tasks, factors : dict of str to ndarray, optional
+        Probe labels and clutter descriptions per pair.
+    names : sequence of str, optional
+        A name per pair.
+    scoring : ScoringOptions, optional
+    source : dict, optional
+        ``spec``, ``name`` and ``path`` recorded as the result's encoder and data set.
+
+    Returns
+    -------
+    dict
+        A result in the ``invariance.result/1`` schema.
+    """
     from .scoring import score_features
 
+    scoring = _checked(scoring, ScoringOptions, "scoring")
     start = time.perf_counter()
-    scored = score_features(
-        clean, cluttered, tasks=tasks, factors=factors, names=names,
-        **_scoring_kwargs(seed, permutations, folds, tsne),
-    )
+    scored = score_features(clean, cluttered, tasks=tasks, factors=factors, names=names, options=scoring)
     elapsed = time.perf_counter() - start
     source = source or {}
     return {
         "schema": RESULT_SCHEMA,
         **scored,
-        "encoder": {"spec": source.get("spec", "features"), "name": source.get("name", "features"), "layer": DEFAULT_LAYER},
+        "encoder": {"spec": source.get("spec", "features"), "name": source.get("name", "features"),
+                    "layer": DEFAULT_LAYER},
         "dataset": {"path": source.get("path"), "pairs": int(np.asarray(clean).shape[0])},
-        "environment": environment_info(seed=seed, timings={"score": elapsed}),
+        "environment": environment_info(seed=scoring.seed, timings={"score": elapsed}),
     }
 
 
-def probe_gap(metrics: dict) -> float | None:
-    """The largest clean-minus-cluttered probe gap over labels, or None without probes."""
-    gaps = [p["gap"] for p in metrics.get("probe", {}).values() if isinstance(p, dict) and "gap" in p]
-    return max(gaps) if gaps else None
+def _entry(item) -> EncoderEntry:
+    if isinstance(item, EncoderEntry):
+        return item
+    if isinstance(item, str):
+        return EncoderEntry(item)
+    if isinstance(item, dict):
+        unknown = set(item) - {"spec", "weights", "layers", "name", "image_size"}
+        if unknown or "spec" not in item:
+            raise InvalidParameter("encoders", f"encoders entry {item!r} is not valid; pass an EncoderEntry or a "
+                                               "dict with spec and optional weights, layers, name, image_size")
+        return EncoderEntry(**item)
+    raise InvalidParameter("encoders", f"encoders entry {item!r} is not valid; pass an EncoderEntry")
 
 
-def evaluate_gates(result: dict, thresholds: dict) -> dict:
-    """Compare the result's metrics against user-set thresholds (None = not set).
-
-    Returns the ``gates`` object ``{name: {"threshold", "value", "passed"}}``; a gate whose
-    metric is not computable fails, since nothing shows the encoder meets it.
-    """
-    metrics = result["metrics"]
-    gates = {}
-    for gate, threshold in thresholds.items():
-        if threshold is None:
-            continue
-        group, key = GATES[gate]
-        value = probe_gap(metrics) if key is None else metrics.get(group, {}).get(key)
-        passed = value is not None and value <= threshold
-        gates[gate] = {"threshold": float(threshold), "value": value, "passed": bool(passed)}
-    return gates
-
-
-def raise_for_gates(gates: dict) -> None:
-    """Raise :class:`GateFailed` naming every gate that was not met."""
-    failed = [
-        f"{name} (value {g['value'] if g['value'] is None else round(g['value'], 4)} > {g['threshold']})"
-        for name, g in gates.items()
-        if not g["passed"]
-    ]
-    if failed:
-        raise GateFailed("gate not met: " + "; ".join(failed))
-
-
-def compare_encoders(
-    data,
-    encoders: Sequence[dict],
-    *,
-    seed: int = 0,
-    permutations: int = 1000,
-    folds: int = 5,
-    image_size: int | None = None,
-    device: str = "auto",
-    cache_dir=None,
-    batch_size: int = 32,
-    skip_unpaired: bool = False,
-    progress: bool = True,
-    echo=None,
-    tsne: bool = False,
-) -> dict:
+def compare_encoders(data, encoders: Sequence, *, extraction: ExtractionOptions | None = None,
+                     scoring: ScoringOptions | None = None, progress=True) -> dict:
     """Score several encoders on the same pairs, folds and permutations.
 
-    ``encoders`` is a list of dicts with ``spec`` and optional ``weights``, ``layers``,
-    ``name``. An encoder that fails is recorded under ``failures`` with its message and
-    the others are still scored.
-    """
-    from .data import discover_pairs
+    Parameters
+    ----------
+    data : str or Path
+        Data set folder or manifest CSV.
+    encoders : sequence of EncoderEntry (or spec strings, or dicts with EncoderEntry's fields)
+    extraction, scoring : options, optional
+    progress : bool, callable or Reporter
 
-    pairs = discover_pairs(data, skip_unpaired=skip_unpaired)
-    results, failures = [], []
-    for entry in encoders:
-        label = entry.get("name") or entry["spec"]
-        if echo:
-            echo(f"scoring {label} on {len(pairs)} pairs")
-        try:
-            results.append(
-                score_dataset(
-                    data, entry["spec"], weights=entry.get("weights"), layers=entry.get("layers"),
-                    name=entry.get("name"), seed=seed, permutations=permutations, folds=folds,
-                    image_size=entry.get("image_size", image_size), device=device, cache_dir=cache_dir,
-                    batch_size=batch_size, progress=progress, pairs=pairs, tsne=tsne,
-                )
-            )
-        except InvarianceError as exc:
-            failures.append({"spec": entry["spec"], "name": label, "error": str(exc)})
-            if echo:
-                echo(f"  failed: {exc}")
-    if not results:
-        raise InvarianceError("every encoder failed: " + " | ".join(f"{f['name']}: {f['error']}" for f in failures))
+    Returns
+    -------
+    dict
+        An ``invariance.comparison/1`` object. An encoder that fails is recorded under
+        ``failures`` with its message and the others are still scored.
+    """
     from .results import make_comparison
 
+    extraction = _checked(extraction, ExtractionOptions, "extraction")
+    scoring = _checked(scoring, ScoringOptions, "scoring")
+    entries = [_entry(item) for item in encoders]
+    if not entries:
+        raise InvalidParameter("encoders", "encoders=[] is not valid; pass at least one encoder")
+    reporter = as_reporter(progress)
+    pairs = _discover(data, extraction)
+    results, failures = [], []
+    for entry in entries:
+        reporter.note(f"scoring {entry.label} on {len(pairs)} pairs")
+        try:
+            encoder = _load(entry.spec, entry.weights, extraction, entry.image_size)
+            results.append(score_dataset(data, entry.spec, weights=entry.weights, layers=entry.layers,
+                                         name=entry.name, extraction=extraction, scoring=scoring,
+                                         progress=reporter, pairs=pairs, encoder=encoder))
+        except InvarianceError as exc:
+            failures.append({"spec": entry.spec, "name": entry.label, "error": str(exc)})
+            reporter.note(f"  failed: {exc}")
+    if not results:
+        raise InvarianceError("every encoder failed: " + " | ".join(f"{f['name']}: {f['error']}" for f in failures))
     return make_comparison(results, failures=failures)
 
 
-def align_dataset(
-    data,
-    spec: str,
-    *,
-    out,
-    weights=None,
-    steps: int | None = None,
-    minutes: float | None = None,
-    train_from: str | None = None,
-    held_out_fraction: float = 0.3,
-    anchor_weight: float | None = None,
-    paired_weight: float | None = None,
-    mean_weight: float | None = None,
-    task_weight: float | None = None,
-    learning_rate: float | None = None,
-    guard_margin: float | None = None,
-    seed: int = 0,
-    image_size: int | None = None,
-    device: str = "auto",
-    batch_size: int = 32,
-    skip_unpaired: bool = False,
-    permutations: int = 1000,
-    progress: bool = True,
-    pairs=None,
-) -> dict:
-    """Align an encoder on a data set and return a result whose ``metrics`` are the
-    aligned encoder's on the held-out pairs, with ``alignment`` holding before/after.
+def align_dataset(data, spec: str, *, out, weights=None, alignment: AlignmentOptions | None = None,
+                  scoring: ScoringOptions | None = None, extraction: ExtractionOptions | None = None,
+                  progress=True, pairs=None) -> dict:
+    """Align an encoder on a data set (see :func:`invariance.align.align_encoder`).
+
+    Returns
+    -------
+    dict
+        A result whose ``metrics`` are the aligned encoder's on the held-out pairs, with
+        ``alignment`` holding before/after, the settings and the training curves.
     """
-    from .data import discover_pairs
-
-    if pairs is None:
-        pairs = discover_pairs(data, skip_unpaired=skip_unpaired)
     from .align import align_encoder
-    from .encoders import load_encoder
 
-    encoder = load_encoder(spec, weights=weights, device=device, image_size=image_size)
-    # Options left as None take the library's defaults (documented in align_encoder).
-    optional = {"anchor_weight": anchor_weight, "paired_weight": paired_weight, "mean_weight": mean_weight,
-                "minutes": minutes, "train_from": train_from, "steps": steps, "task_weight": task_weight,
-                "learning_rate": learning_rate, "guard_margin": guard_margin}
+    alignment = _checked(alignment, AlignmentOptions, "alignment")
+    scoring = _checked(scoring, ScoringOptions, "scoring")
+    extraction = _checked(extraction, ExtractionOptions, "extraction")
+    if pairs is None:
+        pairs = _discover(data, extraction)
+    encoder = _load(spec, weights, extraction)
     start = time.perf_counter()
-    alignment = align_encoder(
-        pairs, encoder, out=out, held_out_fraction=held_out_fraction, seed=seed,
-        batch_size=batch_size, progress=progress, permutations=permutations,
-        **{k: v for k, v in optional.items() if v is not None},
-    )
+    outcome = align_encoder(pairs, encoder, out=out, options=alignment, scoring=scoring, extraction=extraction,
+                            progress=progress)
     elapsed = time.perf_counter() - start
     return {
         "schema": RESULT_SCHEMA,
         "encoder": {**encoder.describe(), "name": f"{spec} aligned", "spec": f"checkpoint:{out}", "source_spec": spec,
                     "layer": DEFAULT_LAYER},
-        "dataset": {**pairs.describe(), "content_hash": pairs.content_hash(), "image_size": _image_size(pairs)},
-        "metrics": alignment["after"],
-        "alignment": alignment,
-        "environment": environment_info(seed=seed, device=str(encoder.device), timings={"align": elapsed}),
+        "dataset": _dataset_info(pairs),
+        "metrics": outcome["after"],
+        "alignment": outcome,
+        "environment": environment_info(seed=scoring.seed, device=str(encoder.device), timings={"align": elapsed}),
     }

@@ -7,7 +7,8 @@ import json
 import pytest
 from click.testing import CliRunner
 
-from invariance.cli import _read_encoders_toml, cli
+from invariance.cli import cli
+from invariance.encoder_list import read_encoder_list
 from invariance.errors import InvarianceError
 
 
@@ -15,10 +16,10 @@ def test_encoders_toml_reads_specs_and_resolves_weights(tmp_path):
     path = tmp_path / "enc.toml"
     path.write_text('[[encoder]]\nspec = "torchvision:resnet18"\nweights = "w/r18.pt"\nname = "mine"\n'
                     '[[encoder]]\nspec = "python:pkg.mod:fn"\nlayers = ["a", "b"]\n')
-    entries = _read_encoders_toml(path)
-    assert [e["spec"] for e in entries] == ["torchvision:resnet18", "python:pkg.mod:fn"]
-    assert entries[0]["weights"] == tmp_path / "w" / "r18.pt"  # relative to the TOML file
-    assert entries[1]["layers"] == ["a", "b"]
+    entries = read_encoder_list(path)
+    assert [e.spec for e in entries] == ["torchvision:resnet18", "python:pkg.mod:fn"]
+    assert entries[0].weights == tmp_path / "w" / "r18.pt"  # relative to the TOML file
+    assert list(entries[1].layers) == ["a", "b"]
 
 
 @pytest.mark.parametrize(
@@ -34,7 +35,7 @@ def test_encoders_toml_errors(tmp_path, text, message):
     path = tmp_path / "enc.toml"
     path.write_text(text)
     with pytest.raises(InvarianceError, match=message.replace("[", r"\[").replace("]", r"\]")):
-        _read_encoders_toml(path)
+        read_encoder_list(path)
 
 
 def test_report_refuses_another_schema_and_writes_nothing(tmp_path):

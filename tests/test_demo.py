@@ -17,7 +17,7 @@ def _by_name(comparison):
 
 
 def test_demo_ranks_a_clutter_robust_encoder_ahead_with_separate_intervals(tmp_path):
-    summary = run_demo(tmp_path / "demo", progress=False, echo=lambda m: None, cache_dir=tmp_path / "cache")
+    summary = run_demo(tmp_path / "demo", progress=False, cache_dir=tmp_path / "cache")
     assert len(summary) == 5 and summary[0].startswith("report: ")
     comparison = json.loads((tmp_path / "demo" / "comparison.json").read_text())
     results = _by_name(comparison)

@@ -76,14 +76,17 @@ def test_compare_then_report_gives_same_numbers(scenes_dir, tmp_path):
 
 def test_warm_cache_skips_the_forward_pass(scenes_dir, tmp_path, monkeypatch):
     from invariance import pipeline
+    from invariance.options import ExtractionOptions, ScoringOptions
 
     cache = tmp_path / "cache"
-    first = pipeline.score_dataset(scenes_dir, SMALL_ENCODER, cache_dir=cache, permutations=20, progress=False)
+    first = pipeline.score_dataset(scenes_dir, SMALL_ENCODER, extraction=ExtractionOptions(cache_dir=cache),
+                                   scoring=ScoringOptions(permutations=20), progress=False)
     import torch
 
     calls = []
     monkeypatch.setattr(torch.nn.Module, "__call__", lambda self, *a, **k: calls.append(1) or (_ for _ in ()).throw(
         AssertionError("forward pass on a warm cache")))
-    second = pipeline.score_dataset(scenes_dir, SMALL_ENCODER, cache_dir=cache, permutations=20, progress=False)
+    second = pipeline.score_dataset(scenes_dir, SMALL_ENCODER, extraction=ExtractionOptions(cache_dir=cache),
+                                   scoring=ScoringOptions(permutations=20), progress=False)
     assert not calls
     np.testing.assert_allclose(first["metrics"]["cka"], second["metrics"]["cka"])

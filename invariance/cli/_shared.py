@@ -1,0 +1,240 @@
+"""What every command shares: error handling, option groups that build options objects,
+flag names for library parameters, output checks and writing.
+
+The option groups turn click options into the frozen objects of
+:mod:`invariance.options` once, so each command receives ``extraction``, ``scoring``,
+``alignment`` or ``gates`` whole.
+"""
+
+from __future__ import annotations
+
+import functools
+import sys
+from dataclasses import fields
+from pathlib import Path
+
+import click
+
+from ..errors import InvalidParameter, InvarianceError
+from ..options import AlignmentOptions, ExtractionOptions, Gates, ScoringOptions
+
+ENCODER_HELP = (
+    "Encoder spec: torchvision:NAME (random init), torchvision:NAME@WEIGHTS (torchvision weights "
+    "from the local hub cache), torchscript:FILE, python:MODULE:CALLABLE or python:FILE.py:CALLABLE, "
+    "checkpoint:FILE (from `invariance align`)."
+)
+
+EXIT_CODES_HELP = (
+    "Exit codes: 0 success; 1 a clear error (bad input, nothing written half-way); "
+    "2 usage error (a bad option value); 3 a gate was not met."
+)
+
+# Library parameter -> command-line flag, where the flag is not the parameter's name with
+# dashes (the library names parameters, the command line names flags).
+_FLAGS = {"held_out_fraction": "--held-out", "spec": "--encoder", "cache_dir": "--cache-dir"}
+
+
+def flag_for(parameter: str) -> str:
+    """The command-line flag of a library parameter."""
+    return _FLAGS.get(parameter, "--" + parameter.replace("_", "-"))
+
+
+def usage_error(exc: InvalidParameter) -> click.UsageError:
+    """A click usage error (exit 2) that names the flag instead of the parameter."""
+    flag = flag_for(exc.parameter)
+    return click.UsageError(str(exc).replace(f"{exc.parameter}=", f"{flag} ", 1))
+
+
+def handle_errors(func):
+    """Library errors become one line on stderr and the documented exit code."""
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        try:
+            return func(*args, **kwargs)
+        except InvalidParameter as exc:
+            raise usage_error(exc) from None
+        except InvarianceError as exc:
+            click.echo(f"error: {exc}", err=True)
+            sys.exit(exc.exit_code)
+        except KeyboardInterrupt:
+            click.echo("interrupted; nothing was written half-way", err=True)
+            sys.exit(130)
+
+    return wrapper
+
+
+def _option_group(target: str, options: list, build):
+    """Add ``options`` to a command and hand it ``target=build(values)`` instead of them."""
+    names = [opt_name for opt_name, _ in options]
+
+    def decorator(func):
+        @functools.wraps(func)
+        def wrapper(*args, **kwargs):
+            values = {name: kwargs.pop(name) for name in names}
+            try:
+                kwargs[target] = build(values)
+            except InvalidParameter as exc:
+                raise usage_error(exc) from None
+            return func(*args, **kwargs)
+
+        for _, option in reversed(options):
+            wrapper = option(wrapper)
+        return wrapper
+
+    return decorator
+
+
+def _default_cache_dir():
+    from ..pipeline import default_cache_dir
+
+    return default_cache_dir()
+
+
+def _build_extraction(values) -> ExtractionOptions:
+    no_cache = values.pop("no_cache")
+    cache_dir = None if no_cache else (values["cache_dir"] or _default_cache_dir())
+    return ExtractionOptions(**{**values, "cache_dir": cache_dir})
+
+
+def extraction_options(func):
+    """--image-size, --device, --batch-size, --cache-dir, --no-cache, --skip-unpaired."""
+    d = ExtractionOptions()
+    options = [
+        ("image_size", click.option("--image-size", type=int, default=None,
+                                    help="Resize images to PX x PX (16-2048; overrides the encoder's own "
+                                         "preprocessing).")),
+        ("device", click.option("--device", type=click.Choice(["auto", "cpu", "cuda"]), default=d.device,
+                                show_default=True, help="Where the encoder runs; auto uses a GPU when present.")),
+        ("batch_size", click.option("--batch-size", type=int, default=d.batch_size, show_default=True,
+                                    help="Images per forward pass (2-4096).")),
+        ("cache_dir", click.option("--cache-dir", type=click.Path(file_okay=False, path_type=Path), default=None,
+                                   help="Feature cache folder [default: $INVARIANCE_CACHE or "
+                                        "~/.cache/invariance/features].")),
+        ("no_cache", click.option("--no-cache", is_flag=True, help="Neither read nor write the feature cache.")),
+        ("skip_unpaired", click.option("--skip-unpaired", is_flag=True,
+                                       help="Go on without images that have no partner.")),
+    ]
+    return _option_group("extraction", options, _build_extraction)(func)
+
+
+def scoring_options(*, folds: bool = True, tsne: bool = True):
+    """--seed, --permutations and, where the command uses them, --folds and --tsne."""
+    d = ScoringOptions()
+    options = [
+        ("seed", click.option("--seed", type=int, default=d.seed, show_default=True,
+                              help="Seed for every split, permutation and subsample.")),
+        ("permutations", click.option("--permutations", type=int, default=d.permutations, show_default=True,
+                                      help="Paired permutations for the MMD test (1-1000000).")),
+    ]
+    if folds:
+        options.append(("folds", click.option("--folds", type=int, default=d.folds, show_default=True,
+                                              help="Grouped folds for the domain classifier (2-50).")))
+    if tsne:
+        options.append(("tsne", click.option("--tsne", is_flag=True,
+                                             help="Add a t-SNE view of the features to the report (slower).")))
+    return _option_group("scoring", options, lambda values: ScoringOptions(**values))
+
+
+def gate_options(func):
+    """--max-domain-accuracy, --max-relative-drift, --max-probe-gap."""
+    options = [
+        ("max_domain_accuracy", click.option("--max-domain-accuracy", type=float,
+                                             help="Gate: exit 3 if held-out domain accuracy is above this (0-1).")),
+        ("max_relative_drift", click.option("--max-relative-drift", type=float,
+                                            help="Gate: exit 3 if relative drift is above this.")),
+        ("max_probe_gap", click.option("--max-probe-gap", type=float,
+                                       help="Gate: exit 3 if any probe's clean-minus-cluttered gap is above this.")),
+    ]
+    return _option_group("gates", options, lambda values: Gates(**values))(func)
+
+
+_ALIGNMENT_HELP = {
+    "steps": "Training steps (the schedules follow them, so a run is reproducible on any machine).",
+    "minutes": "Wall-clock limit for training; it only stops training early [default: none].",
+    "train_from": "First top-level block to train (earlier blocks are frozen and cached) "
+                  "[default: the last block with parameters].",
+    "held_out_fraction": "Fraction of pairs never trained on; before/after are measured on them (0.05-0.8).",
+    "anchor_weight": "Weight of the clean-feature anchor loss.",
+    "paired_weight": "Weight of the paired consistency loss.",
+    "mean_weight": "Weight of the mean-matching loss (whitened distance between the clean and cluttered "
+                   "mean features).",
+    "task_weight": "Weight of the task heads on clean labels.",
+    "learning_rate": "Initial learning rate (Adam, annealed by the DANN schedule).",
+    "guard_margin": "Stop when a clean probe falls more than this relative margin below its start (0-1).",
+}
+
+
+def alignment_options(func):
+    """One flag per :class:`AlignmentOptions` field except the batch size (--batch-size sets it)."""
+    d = AlignmentOptions()
+    options = []
+    for f in fields(AlignmentOptions):
+        if f.name == "batch_size":
+            continue
+        value = getattr(d, f.name)
+        kind = int if f.name == "steps" else (str if f.name == "train_from" else float)
+        options.append((f.name, click.option(flag_for(f.name), f.name, type=kind, default=value,
+                                             show_default=value is not None, help=_ALIGNMENT_HELP[f.name])))
+    return _option_group("alignment", options, lambda values: AlignmentOptions(**values))(func)
+
+
+def quiet_option(func):
+    return click.option("--quiet", is_flag=True, help="No progress on stderr.")(func)
+
+
+def json_option(func):
+    return click.option("--json", "json_path", type=click.Path(dir_okay=False, path_type=Path),
+                        help="Write the result JSON here.")(func)
+
+
+def report_option(func):
+    return click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path),
+                        help="Write an HTML report here.")(func)
+
+
+def encoder_option(func):
+    return click.option("--encoder", "spec", help=ENCODER_HELP)(func)
+
+
+def weights_option(func):
+    return click.option("--weights", type=click.Path(dir_okay=False, path_type=Path),
+                        help="Local state_dict for a torchvision: spec.")(func)
+
+
+def check_output_paths(*paths):
+    """Fail before any work when an output file cannot be written (a real test write)."""
+    from .._io import check_writable
+
+    for path in paths:
+        if path is not None:
+            check_writable(path)
+
+
+def write_result_outputs(result, *, json_path=None, report_path=None, drift_csv=None, tsne=False):
+    """The result JSON, the per-pair drift CSV and the HTML report, each written atomically."""
+    from .._io import atomic_write_json, atomic_write_text
+
+    if json_path:
+        atomic_write_json(json_path, result)
+        click.echo(f"result JSON: {json_path}")
+    if drift_csv:
+        atomic_write_text(drift_csv, drift_table(result.get("pairs", [])))
+        click.echo(f"per-pair drift: {drift_csv}")
+    if report_path:
+        from ..report import write_report
+
+        write_report(report_path, [result], tsne=tsne)
+        click.echo(f"report: {report_path}")
+
+
+def drift_table(pairs) -> str:
+    """Per-pair drift as CSV text (file, relative_drift); an empty cell where not computable."""
+    import csv
+    import io
+
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(["file", "relative_drift"])
+    writer.writerows([p["name"], "" if p["drift"] is None else f"{p['drift']:.6f}"] for p in pairs)
+    return out.getvalue()
