@@ -385,10 +385,39 @@ def load_feature_files(clean_path, cluttered_path):
     return clean, cluttered
 
 
+def _check_npy_header(path):
+    """Refuse a .npy file whose header promises more data than the file holds.
+
+    Reading such a file would first try to allocate what the header claims (a 112-byte
+    file may claim terabytes).
+    """
+    try:
+        with open(path, "rb") as fh:
+            version = np.lib.format.read_magic(fh)
+            read = {(1, 0): np.lib.format.read_array_header_1_0, (2, 0): np.lib.format.read_array_header_2_0}
+            if version not in read:
+                raise ValueError(f"unsupported .npy format version {version}")
+            shape, _, dtype = read[version](fh)
+            offset = fh.tell()
+    except (ValueError, OSError, EOFError, SyntaxError) as err:
+        reason = str(err).splitlines()[0] if str(err) else type(err).__name__
+        raise InvarianceError(f"{path}: not a readable numeric .npy array ({reason}); save it with numpy.save") from None
+    if dtype.hasobject:
+        raise InvarianceError(f"{path}: not a readable numeric .npy array (it holds Python objects, which are never loaded); save a numeric array with numpy.save")
+    claimed = int(np.prod(shape, dtype=object)) * dtype.itemsize
+    actual = path.stat().st_size - offset
+    if claimed != actual:
+        raise InvarianceError(
+            f"{path}: the header claims shape {tuple(shape)} ({claimed:,} bytes) but the file holds {actual:,} "
+            f"bytes of data; the file is truncated or corrupt, save it again with numpy.save"
+        )
+
+
 def _load_npy(path):
     path = Path(path)
     if not path.is_file():
         raise InvarianceError(f"{path}: no such file; give the path of a .npy feature matrix")
+    _check_npy_header(path)
     try:
         array = np.load(path, allow_pickle=False)
     except (ValueError, OSError, EOFError) as err:

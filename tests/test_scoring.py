@@ -198,3 +198,55 @@ def test_readings_say_what_the_numbers_mean(scored):
     flat = score_features(np.ones((20, 3)), np.ones((20, 3)), options=ScoringOptions(**FAST))
     constant = describe_metrics(flat["metrics"])
     assert ("linear CKA", "n/a") == constant[-1][:2]
+
+
+# Inputs that used to end in a traceback: each is now one clear InvarianceError.
+
+
+def test_features_with_no_columns_are_a_clear_error():
+    with pytest.raises(InvarianceError, match="0 columns"):
+        score_features(np.zeros((30, 0)), np.zeros((30, 0)), options=ScoringOptions(**FAST))
+
+
+def test_npy_header_promising_more_than_the_file_holds_is_refused_before_reading(tmp_path):
+    # The .npy layout (magic, header dict, raw data) is numpy's own: numpy.lib.format.
+    header = np.lib.format.header_data_from_array_1_0(np.zeros((2, 2), np.float32))
+    header["shape"] = (10**6, 10**6)
+    path = tmp_path / "claims_4tb.npy"
+    with open(path, "wb") as fh:
+        np.lib.format.write_array_header_1_0(fh, header)
+        fh.write(b"\0" * 64)
+    np.save(tmp_path / "ok.npy", np.zeros((4, 4), np.float32))
+    with pytest.raises(InvarianceError, match="header claims shape"):
+        load_feature_files(path, tmp_path / "ok.npy")
+
+
+def test_features_too_large_to_square_are_a_clear_error():
+    clean, cluttered = _pairs(n=20, seed=9)
+    with pytest.raises(InvarianceError, match="too large to square"):
+        score_features(clean * 1e200, cluttered * 1e200, options=ScoringOptions(**FAST))
+
+
+def test_large_float32_features_give_the_metrics_of_rescaled_ones():
+    # Every metric here is invariant to multiplying both views by one constant (the
+    # classifier and probes standardise, MMD's median-heuristic bandwidth scales, drift is
+    # relative, CKA is scale-free: Kornblith et al., ICML 2019, section 3), so 1e20 x the
+    # features must give the metrics of the features themselves (float32 would overflow).
+    clean, cluttered = _pairs(n=30, seed=10, shift=0.3)
+    small = score_features(clean.astype(np.float32), cluttered.astype(np.float32), options=ScoringOptions(**FAST))
+    large = score_features((clean * 1e20).astype(np.float32), (cluttered * 1e20).astype(np.float32),
+                           options=ScoringOptions(**FAST))
+    assert large["metrics"]["cka"] == pytest.approx(small["metrics"]["cka"], rel=1e-4)
+    assert large["metrics"]["paired_drift"]["relative_drift"] == pytest.approx(
+        small["metrics"]["paired_drift"]["relative_drift"], rel=1e-4)
+
+
+def test_regression_label_near_1e300_gives_the_r2_of_the_rescaled_label():
+    # R^2 is unchanged when the target is divided by a constant (its definition as
+    # 1 - SS_res / SS_tot, scikit-learn's r2_score); a label near 1e300 used to overflow.
+    clean, cluttered = _pairs(n=40, seed=11)
+    y = clean[:, 0] + 0.1 * np.random.default_rng(1).standard_normal(40)
+    plain = score_features(clean, cluttered, tasks={"y": y}, options=ScoringOptions(**FAST))
+    huge = score_features(clean, cluttered, tasks={"y": y * 1e300}, options=ScoringOptions(**FAST))
+    assert np.isfinite(huge["metrics"]["probe"]["y"]["clean"])
+    assert huge["metrics"]["probe"]["y"]["clean"] == pytest.approx(plain["metrics"]["probe"]["y"]["clean"], abs=1e-6)

@@ -67,6 +67,26 @@ def _check_int(name, value, low):
     return int(value)
 
 
+# Largest feature magnitude accepted: the statistics sum squares of up to ~1e8 entries, and
+# (1e100)^2 * 1e8 = 1e208 stays far below float64's 1.8e308.
+MAX_ABS_FEATURE = 1e100
+# float32 overflows at 3.4e38: squares of values above 1e15 summed over 1e8 entries would,
+# so such arrays are computed in float64.
+_FLOAT32_SAFE_ABS = 1e15
+
+
+def _checked_magnitude(name, arr):
+    peak = float(np.max(np.abs(arr))) if arr.size else 0.0
+    if peak > MAX_ABS_FEATURE:
+        raise InvarianceError(
+            f"{name} features reach {peak:.3g}, too large to square without overflow (limit "
+            f"{MAX_ABS_FEATURE:.0e}): divide both feature matrices by one constant first"
+        )
+    if arr.dtype != np.float64 and peak > _FLOAT32_SAFE_ABS:
+        arr = arr.astype(np.float64)
+    return arr
+
+
 def _validate_pairs(clean, cluttered, *, min_pairs=1):
     """Return ``clean`` and ``cluttered`` as 2-D float arrays of equal shape."""
     clean = np.asarray(clean)
@@ -85,13 +105,23 @@ def _validate_pairs(clean, cluttered, *, min_pairs=1):
         clean = clean.astype(np.float64)
     if not np.issubdtype(cluttered.dtype, np.floating):
         cluttered = cluttered.astype(np.float64)
+    if clean.shape[1] == 0:
+        raise InvarianceError(
+            f"the features have 0 columns (shape {clean.shape}): give at least one feature per "
+            f"image (check the layer or the arrays you saved)"
+        )
     for name, arr in (("clean", clean), ("cluttered", cluttered)):
         bad = ~np.isfinite(arr).all(axis=1)
         if bad.any():
+            rows = ", ".join(map(str, np.flatnonzero(bad)[:5])) + (", ..." if bad.sum() > 5 else "")
             raise InvarianceError(
                 f"{name} features contain NaN or inf in {int(bad.sum())} of "
-                f"{arr.shape[0]} rows: remove those pairs or fix the feature extraction"
+                f"{arr.shape[0]} rows (rows {rows}): remove those pairs or fix the feature extraction"
             )
+    clean = _checked_magnitude("clean", clean)
+    cluttered = _checked_magnitude("cluttered", cluttered)
+    if clean.dtype != cluttered.dtype:
+        clean, cluttered = clean.astype(np.float64), cluttered.astype(np.float64)
     if clean.shape[0] < min_pairs:
         raise InvarianceError(
             f"only {clean.shape[0]} pairs of features; need at least {min_pairs}: "

@@ -100,6 +100,10 @@ def _probe_one(clean, cluttered, values, seed, test_fraction):
             "not_computable": f"only {idx.size} labelled pairs; need {MIN_LABELLED_PAIRS}"
         }
     y = values[idx].astype(np.float64) if kind == "regression" else values[idx].astype(str)
+    if kind == "regression":
+        # R^2 does not change when the target is divided by a constant, and a target near
+        # 1e300 would overflow when squared: fit on y / max|y|
+        y = y / max(float(np.max(np.abs(y))), np.finfo(float).tiny)
     if np.unique(y).size < 2:
         what = "one class" if kind == "classification" else "a constant value"
         return {"not_computable": f"the label has {what} only, so there is nothing to predict"}
