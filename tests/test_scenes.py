@@ -10,7 +10,6 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from invariance import scenes
 from invariance.errors import InvarianceError
 from invariance.scenes import (
     FACTORS,
@@ -20,6 +19,7 @@ from invariance.scenes import (
     render_pair,
     target_mask,
 )
+from invariance.scenes import raster, sampler, shapes, surfaces
 
 HEADER = ["file", "part", "x", "y", "angle", "factor_surface", "factor_distractors", "factor_lighting", "level"]
 
@@ -39,6 +39,14 @@ def _rows(root):
 
 def _load(path):
     return np.asarray(Image.open(path).convert("RGB"))
+
+
+def _centroid(layer):
+    """Coverage-weighted centre ``(x, y)`` of a rendered layer, in image pixels (centres at +0.5)."""
+    _, alpha, r0, c0 = layer
+    rows, cols = np.mgrid[0 : alpha.shape[0], 0 : alpha.shape[1]]
+    w = alpha / alpha.sum()
+    return ((cols + c0 + 0.5) * w).sum(), ((rows + r0 + 0.5) * w).sum()
 
 
 @pytest.fixture(scope="module")
@@ -203,9 +211,10 @@ def test_only_selected_factors_are_active(tmp_path):
 def test_activation_probabilities():
     """Each factor is on with p = 1/2, plus 1/3 of the all-off case (1/8): 13/24 in all.
 
-    Reference: the rule in the module docstring, exact probability by enumeration.
+    Reference: the rule in the docstring of ``invariance.scenes.sampler``, exact probability
+    by enumeration.
     """
-    draws = [scenes._choose_clutter(np.random.default_rng([8, i]), FACTORS, None) for i in range(3000)]
+    draws = [sampler._choose_clutter(np.random.default_rng([8, i]), FACTORS, None) for i in range(3000)]
     levels = np.array([lvl for lvl, _ in draws])
     assert set(levels) == {1, 2, 3}
     assert abs((levels == 3).mean() - 1 / 3) < 0.04
@@ -229,6 +238,28 @@ def test_distractor_coverage_grows_with_severity():
     assert fractions[3] > 0.1
 
 
+@pytest.mark.parametrize("texture", surfaces._TEXTURES, ids=lambda f: f.__name__.strip("_"))
+def test_each_surface_texture_changes_the_bench_and_leaves_its_input(texture):
+    """Every texture alters most of the bench and returns a new image (common practice)."""
+    size = 64
+    bg = np.full((3, size, size), 150.0, dtype=np.float32)
+    before = bg.copy()
+    x, y = raster._grid(size)
+    out = texture(np.random.default_rng(1), bg, x, y, 3.0)
+    assert np.array_equal(bg, before)
+    assert out.shape == bg.shape
+    assert (np.abs(out - bg) > 0.5).any(axis=0).mean() > 0.2
+
+
+def test_package_exports_what_callers_import():
+    """The names the command line, the demo, the bench and the tests import stay public."""
+    import invariance.scenes as package
+
+    for name in ("FACTORS", "PART_KINDS", "CSV_HEADER", "generate_scenes", "pair_rng", "render_pair", "target_mask"):
+        assert name in package.__all__ and hasattr(package, name), name
+    assert package.CSV_HEADER == tuple(HEADER)
+
+
 # ------------------------------------------------------------------ drawing geometry
 
 
@@ -240,15 +271,13 @@ def test_antialiased_area_matches_shoelace_area():
         return 0.5 * abs(np.dot(x, np.roll(y, -1)) - np.dot(y, np.roll(x, -1)))
 
     radius = 30.0
-    outer = scenes._circle(0.0, 0.0, 0.78, 36)
-    hole = scenes._circle(0.0, 0.0, 0.5, 28)
+    outer = shapes._circle(0.0, 0.0, 0.78, 36)
+    hole = shapes._circle(0.0, 0.0, 0.5, 28)
     exact = (shoelace(outer) - shoelace(hole)) * radius**2
-    _, alpha, r0, c0 = scenes._render_shape("washer", (120, 120, 120), 64.3, 61.7, radius, 17.0, 128)
-    assert alpha.sum() == pytest.approx(exact, rel=0.01)
-    # centrally symmetric coverage: its centroid is the given centre (pixel centres at +0.5)
-    rows, cols = np.mgrid[0 : alpha.shape[0], 0 : alpha.shape[1]]
-    cy = ((rows + r0 + 0.5) * alpha).sum() / alpha.sum()
-    cx = ((cols + c0 + 0.5) * alpha).sum() / alpha.sum()
+    layer = raster._render_shape("washer", (120, 120, 120), 64.3, 61.7, radius, 17.0, 128)
+    assert layer[1].sum() == pytest.approx(exact, rel=0.01)
+    # centrally symmetric coverage: its centroid is the given centre
+    cx, cy = _centroid(layer)
     assert (cx, cy) == pytest.approx((64.3, 61.7), abs=0.1)
 
 
@@ -256,10 +285,8 @@ def test_angle_is_counter_clockwise_on_screen():
     """The bolt's head is at local -u: at +90 degrees (counter-clockwise) it points down."""
 
     def head_offset(angle):
-        _, alpha, r0, c0 = scenes._render_shape("bolt", (120, 120, 120), 64.0, 64.0, 30.0, angle, 128)
-        rows, cols = np.mgrid[0 : alpha.shape[0], 0 : alpha.shape[1]]
-        w = alpha / alpha.sum()
-        return ((cols + c0 + 0.5) * w).sum() - 64.0, ((rows + r0 + 0.5) * w).sum() - 64.0
+        cx, cy = _centroid(raster._render_shape("bolt", (120, 120, 120), 64.0, 64.0, 30.0, angle, 128))
+        return cx - 64.0, cy - 64.0
 
     dx, dy = head_offset(0.0)
     assert dx < -2 and abs(dy) < 0.5  # head left
@@ -273,8 +300,8 @@ def test_parts_are_distinguishable_by_silhouette():
     """At 64 px (part radius 10 px) no two kinds overlap by more than 2/3 (IoU of masks)."""
     masks = {}
     for kind in PART_KINDS:
-        layer = scenes._render_shape(kind, (120, 120, 120), 32.0, 32.0, 10.0, 0.0, 64)
-        masks[kind] = scenes._layer_mask(layer, 64)
+        layer = raster._render_shape(kind, (120, 120, 120), 32.0, 32.0, 10.0, 0.0, 64)
+        masks[kind] = raster._layer_mask(layer, 64)
     for i, a in enumerate(PART_KINDS):
         for b in PART_KINDS[i + 1 :]:
             iou = (masks[a] & masks[b]).sum() / (masks[a] | masks[b]).sum()
