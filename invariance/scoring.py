@@ -1,6 +1,6 @@
 """All invariance metrics on one pair of feature matrices, with breakdowns by factor.
 
-``score_features`` is the ``metrics`` object of the result JSON (DESIGN.md) plus the
+``score_features`` is the ``metrics`` object of the result JSON (docs/design.md) plus the
 per-factor ``breakdowns``, per-pair drift, a 2-D projection for the report and warnings.
 Every value is a plain Python number, string or list; a metric that cannot be computed
 is ``{"not_computable": reason}`` and no NaN or infinity ever reaches the output.
@@ -39,10 +39,6 @@ CKA_MIN_PAIRS = 3
 # domain classifier 5-11x) and no faster when the cores were free
 # (tests/benchmarks/bench_stats.py prints the ratios), so scoring is single-threaded.
 _THREADS = 1
-
-# Significance level of the plain-language readings (common practice).
-ALPHA = 0.05
-
 
 def _min_pairs(folds):
     """Pairs needed for the whole score: every metric must be computable."""
@@ -439,119 +435,3 @@ def _load_npy(path):
             f"those pairs from both files"
         )
     return array
-
-
-def _percent(value):
-    return f"{100 * value:.0f}%"
-
-
-def _describe_domain(m):
-    acc, p = m["accuracy"], m["p_value"]
-    interval = f"[{_percent(m['ci'][0])}, {_percent(m['ci'][1])}]"
-    if p < ALPHA:
-        reading = (
-            f"a linear classifier tells clean from cluttered {_percent(acc)} of the time "
-            f"(chance 50%, p = {p:.2g}): the encoder separates the domains"
-        )
-    else:
-        reading = (
-            f"a linear classifier tells clean from cluttered {_percent(acc)} of the time, "
-            f"not distinguishable from chance (50%, p = {p:.2g}): no evidence the encoder "
-            f"separates the domains"
-        )
-    return ("domain classifier accuracy", _percent(acc), interval, reading)
-
-
-def _describe_mmd(m):
-    p = m["p_value"]
-    if p < ALPHA:
-        reading = (
-            f"the clean and cluttered feature distributions differ (within-pair permutation "
-            f"test, p = {p:.2g})"
-        )
-    else:
-        reading = (
-            f"no detectable difference between clean and cluttered feature distributions "
-            f"(within-pair permutation test, p = {p:.2g})"
-        )
-    return ("MMD^2", f"{m['mmd2']:.3g} (p = {p:.2g})", "", reading)
-
-
-def _describe_drift(m):
-    ci = m["relative_drift_ci"]
-    rows = [
-        (
-            "relative drift",
-            f"{m['relative_drift']:.2f}",
-            f"[{ci[0]:.2f}, {ci[1]:.2f}]",
-            f"clutter moves a scene's feature {_percent(m['relative_drift'])} as far as "
-            f"changing the scene does (0 = invariant, 1 = as far as a different scene)",
-        ),
-        (
-            "pair retrieval top-1",
-            _percent(m["pair_retrieval_top1"]),
-            "",
-            f"{_percent(m['pair_retrieval_top1'])} of cluttered images find their own clean "
-            f"image as the nearest clean feature",
-        ),
-    ]
-    return rows
-
-
-def _describe_cka(value):
-    return (
-        "linear CKA",
-        f"{value:.2f}",
-        "",
-        f"clean and cluttered representations align at {value:.2f} "
-        f"(1 = the same up to rotation and scale, 0 = unrelated)",
-    )
-
-
-def _describe_probe(label, m):
-    name = f"probe {label} ({m['metric']})"
-    value = f"{m['clean']:.2f} -> {m['cluttered']:.2f} (gap {m['gap']:.2f})"
-    reading = (
-        f"a probe trained on clean features scores {m['clean']:.2f} on held-out clean and "
-        f"{m['cluttered']:.2f} on the same scenes cluttered (gap {m['gap']:.2f})"
-    )
-    return (name, value, "", reading)
-
-
-def describe_metrics(metrics):
-    """Plain-language rows for the terminal table.
-
-    Parameters
-    ----------
-    metrics : dict
-        The ``metrics`` object of :func:`score_features`.
-
-    Returns
-    -------
-    list of (name, value, interval, reading) tuples of str
-        One row per metric (two for paired drift, one per probe); ``interval`` is the
-        95% interval where the metric has one, else "". A metric that could not be
-        computed reads "n/a" with its reason.
-    """
-    rows = []
-    single = (
-        ("domain_classifier", "domain classifier accuracy", _describe_domain),
-        ("mmd", "MMD^2", _describe_mmd),
-        ("paired_drift", "relative drift", _describe_drift),
-        ("cka", "linear CKA", _describe_cka),
-    )
-    for key, title, describe in single:
-        if key not in metrics:
-            continue
-        value = metrics[key]
-        if isinstance(value, dict) and "not_computable" in value:
-            rows.append((title, "n/a", "", value["not_computable"]))
-            continue
-        described = describe(value)
-        rows.extend(described if isinstance(described, list) else [described])
-    for label, probe in metrics.get("probe", {}).items():
-        if "not_computable" in probe:
-            rows.append((f"probe {label}", "n/a", "", probe["not_computable"]))
-        else:
-            rows.append(_describe_probe(label, probe))
-    return rows

@@ -218,8 +218,11 @@ def _alignment(rng: np.random.Generator, separability: float, pairs: int) -> dic
             "discriminator_accuracy": (0.95 - 0.4 * progress + rng.normal(0, 0.02, len(steps))).tolist(),
             "val_domain_accuracy": (0.9 - 0.35 * progress).tolist(),
             "loss_total": (1.2 * np.exp(-2 * progress) + 0.3).tolist(),
+            "loss_domain": (0.69 - 0.1 * np.exp(-3 * progress)).tolist(),
             "loss_anchor": (0.1 + 0.05 * progress).tolist(),
             "loss_task": (0.6 * np.exp(-3 * progress) + 0.1).tolist(),
+            "loss_paired": (0.8 * np.exp(-4 * progress) + 0.2).tolist(),
+            "loss_mean": (0.3 * np.exp(-6 * progress) + 0.01).tolist(),
             "lambda": (2 / (1 + np.exp(-10 * progress)) - 1).tolist(),
         },
     }

@@ -22,10 +22,10 @@ def test_estimate_scales_extraction_with_images_and_statistics_with_pairs_square
     assert far == pytest.approx(2.0 * 100 * MAX_PAIRS / 1000)
 
 
-def test_align_step_figures_are_consistent():
-    # Ratios are derived from the printed seconds (common practice); the targets they are
-    # read against are the project's issues, the operation-count estimate is in the docstring.
+def test_align_step_bench_times_the_same_network_three_ways():
+    # The cached-trunk figure stands for the alignment step only if the cached trunk followed
+    # by the trained tail computes the whole network (common practice: float32 re-association
+    # stays within 1e-4 on these activations). The timings themselves are printed, not asserted.
     fig = bench_align_step(image_size=64, batch_size=4, steps=1)
-    assert fig["align_step_ratio"] == pytest.approx(fig["cached_trunk_step_s"] / fig["whole_network_step_s"])
-    assert fig["cached_over_frozen_rerun"] == pytest.approx(fig["cached_trunk_step_s"] / fig["frozen_trunk_rerun_step_s"])
+    assert fig["split_max_abs_error"] < 1e-4
     assert all(fig[k] > 0 for k in ("whole_network_step_s", "frozen_trunk_rerun_step_s", "cached_trunk_step_s"))

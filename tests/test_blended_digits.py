@@ -14,7 +14,8 @@ from sklearn.datasets import load_digits
 from skimage.transform import resize
 
 from invariance.options import ScoringOptions
-from invariance.scoring import describe_metrics, score_features
+from invariance.readings import describe_metrics
+from invariance.scoring import score_features
 
 N_PAIRS = 300
 SIZE = 28
@@ -73,7 +74,7 @@ def test_blended_digits_show_a_large_significant_gap(digits_pairs):
     assert probe["clean"] > 0.8  # digits stay linearly readable through random features
     assert probe["gap"] > 0.2
     assert m["paired_drift"]["relative_drift"] > 0.3
-    assert "separates the domains" in describe_metrics(m)[0][3]
+    assert "so the encoder separates the domains" in describe_metrics(m)[0][3]
 
 
 def test_identical_sets_show_no_gap(digits_pairs):

@@ -1,4 +1,4 @@
-"""`invariance score --features`: outputs, gates and exit codes (DESIGN.md command-line contract)."""
+"""`invariance score --features`: outputs, gates and exit codes (docs/design.md, command-line contract)."""
 
 from __future__ import annotations
 
@@ -35,7 +35,7 @@ def _run(args):
 
 
 # The statistics themselves are checked against outside references in test_metrics_*.py
-# and test_scoring.py; here the command-line contract of DESIGN.md (keys, gates, exit codes).
+# and test_scoring.py; here the command-line contract of docs/design.md (keys, gates, exit codes).
 
 
 def test_features_json_has_the_design_keys(tmp_path):

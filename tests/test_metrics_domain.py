@@ -96,7 +96,7 @@ def test_separable_domains_reach_accuracy_one_and_distance_two():
 
 
 def test_null_interval_coverage():
-    # Null calibration (DESIGN.md): both domains from one distribution, 100 seeded
+    # Null calibration (docs/design.md, statistics rules): both domains from one distribution, 100 seeded
     # repetitions; the 95% Clopper-Pearson interval must cover 0.5 in >= 85% of them.
     # Fixed C and 3 folds keep this fast; held-out predictions are valid for any C.
     reps = 100

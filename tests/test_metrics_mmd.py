@@ -115,7 +115,7 @@ def test_sign_flip_equals_swapping_the_pair():
 def test_mmd2_approaches_gaussian_closed_form():
     r"""MMD^2 between N(0, s^2 I) and N(delta, s^2 I) with k(x,y) = exp(-|x-y|^2/(2 l^2)).
 
-    Derivation (Gaussian integral; REFERENCES.md "Kernel two-sample test"): if
+    Derivation (Gaussian integral; docs/references.md, "Kernel two-sample test"): if
     x - x' ~ N(mu, 2 s^2 I) in d dimensions, then per coordinate
     E exp(-u^2/(2 l^2)) for u ~ N(m, 2 s^2) equals
     sqrt(l^2/(l^2 + 2 s^2)) exp(-m^2/(2 (l^2 + 2 s^2))), so
@@ -149,7 +149,7 @@ def test_mmd2_approaches_gaussian_closed_form():
 
 
 def test_null_calibration_rejection_rate():
-    # Null calibration (DESIGN.md): within-pair exchangeable data, 120 repetitions,
+    # Null calibration (docs/design.md, statistics rules): within-pair exchangeable data, 120 repetitions,
     # alpha = 0.05; the permutation p-value (b+1)/(B+1) is valid, so the rejection rate
     # must stay near 5% (binomial 99.9% range for 120 trials is about 0-13%; the
     # 1-10% window is the brief's, common practice).

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import base64
-import html
 import io
 import re
 from html.parser import HTMLParser
@@ -11,12 +10,16 @@ from html.parser import HTMLParser
 import matplotlib
 import numpy as np
 import pytest
+from markupsafe import escape  # the escape autoescaping applies (' becomes &#39;)
 from PIL import Image
 
 import invariance
 from invariance.errors import InvarianceError
 from invariance.report import check_writable, plots, render_report, write_report
-from invariance.report import html as report_html
+from invariance.report import render as report_render
+from invariance.report.context import EXAMPLE_PAIRS
+from invariance.report.encoder import WORST_PAIRS
+from invariance.report.thumbnails import THUMBNAIL_PX, Thumbnails
 from invariance.results import rank_results
 from report_fixtures import (
     make_failure,
@@ -110,7 +113,7 @@ def test_every_embedded_image_is_a_png(two_encoders):
     payloads = DATA_URI.findall(page)
     # 6 cross-encoder charts (accuracy, drift, CKA, MMD, two probes); per encoder a projection,
     # a histogram, a layer profile and two breakdown charts; one alignment chart; thumbnails.
-    thumbnails = 2 * 2 * report_html.WORST_PAIRS + 2 * report_html.EXAMPLE_PAIRS
+    thumbnails = 2 * 2 * WORST_PAIRS + 2 * EXAMPLE_PAIRS
     assert len(payloads) == 6 + 2 * 5 + 1 + thumbnails
     for payload in payloads:
         with Image.open(io.BytesIO(base64.b64decode(payload))) as image:
@@ -124,10 +127,10 @@ def test_every_img_is_embedded_and_thumbnails_are_small(two_encoders):
     srcs = _parse(page).srcs
     assert srcs and all(src.startswith("data:image/png;base64,") for src in srcs)
     thumbs = re.findall(r'<img class="thumb" src="data:image/png;base64,([^"]+)"', page)
-    assert len(thumbs) == 2 * 2 * report_html.WORST_PAIRS + 2 * report_html.EXAMPLE_PAIRS
+    assert len(thumbs) == 2 * 2 * WORST_PAIRS + 2 * EXAMPLE_PAIRS
     for payload in thumbs:
         with Image.open(io.BytesIO(base64.b64decode(payload))) as image:
-            assert max(image.size) <= report_html.THUMBNAIL_PX
+            assert max(image.size) <= THUMBNAIL_PX
 
 
 def test_self_contained_no_address_no_script(two_encoders):
@@ -139,7 +142,7 @@ def test_self_contained_no_address_no_script(two_encoders):
 
 def test_safety_caution_at_top_and_end(two_encoders):
     _, page, _ = two_encoders
-    caution = html.escape(invariance.SAFETY_CAUTION)
+    caution = escape(invariance.SAFETY_CAUTION)
     assert page.count(caution) == 2
     assert page.index(caution) < page.index('id="summary"') < page.rindex(caution)
 
@@ -149,7 +152,7 @@ def test_summary_rows_and_sections_follow_the_ranking(two_encoders):
     order = rank_results(results)
     assert order == [1, 0]  # the aligned encoder is less separable
     summary = _section(page, "summary")
-    names = [html.escape(results[i]["encoder"]["name"]) for i in order]
+    names = [escape(results[i]["encoder"]["name"]) for i in order]
     assert summary.index(names[0]) < summary.index(names[1])
     assert page.index('id="encoder-1"') < page.index('id="encoder-0"')
     assert "ranks first" in summary and names[0] in summary.split("ranks first")[0]
@@ -207,7 +210,7 @@ def test_print_layout_breaks_pages_between_encoders(two_encoders):
 
 
 def test_user_text_is_escaped(edge_case):
-    assert EVIL not in edge_case and html.escape(EVIL) in edge_case
+    assert EVIL not in edge_case and escape(EVIL) in edge_case
     assert "<img src=x" not in edge_case
     assert "<b>scene</b>" not in edge_case and "&lt;b&gt;scene&lt;/b&gt;" in edge_case
     assert "<i>raw</i>" not in edge_case and "<evil>" not in edge_case
@@ -223,7 +226,7 @@ def test_not_computable_metrics_render_their_reason(edge_case):
     assert "not computable: only one domain present" in other
     assert "Projection not computable: all feature vectors are identical" in other
     summary = _section(edge_case, "summary")
-    assert summary.index(html.escape(EVIL)) < summary.index("Other data")  # not computable ranks last
+    assert summary.index(escape(EVIL)) < summary.index("Other data")  # not computable ranks last
 
 
 def test_mixed_datasets_show_a_visible_warning(edge_case):
@@ -250,7 +253,7 @@ def test_tsne_shown_when_coordinates_exist_else_explained(edge_case):
 def test_thumbnail_names_cannot_leave_the_dataset(tmp_path):
     root = write_scene_images(tmp_path / "scenes", scene_names(1))
     Image.new("RGB", (8, 8)).save(tmp_path / "scenes" / "outside.png")
-    thumbnails = report_html._Thumbnails(None)
+    thumbnails = Thumbnails(None)
     dataset = {"path": str(root)}
     assert thumbnails.uri(dataset, "clean", "scene_00000.png").startswith("data:image/png;base64,")
     assert thumbnails.uri(dataset, "clean", "../outside.png") is None
@@ -261,7 +264,7 @@ def test_unwritable_output_fails_before_rendering(tmp_path, monkeypatch):
     def _must_not_render(*args, **kwargs):
         raise AssertionError("rendered before checking the output path")
 
-    monkeypatch.setattr(report_html, "render_report", _must_not_render)
+    monkeypatch.setattr(report_render, "render_report", _must_not_render)
     blocker = tmp_path / "a_file"
     blocker.write_text("x", encoding="utf-8")
     result = make_result(seed=1, name="a", spec="python:m:a")
@@ -307,6 +310,26 @@ def test_alignment_curves_need_steps():
     png = plots.alignment_curves({"step": [0, 1, 2], "lambda": [0.0, 0.5, 0.9], "loss_total": [1, None, 0.5]})
     with Image.open(io.BytesIO(png)) as image:
         assert image.format == "PNG"
+
+
+def test_alignment_curves_draw_every_logged_loss():
+    # The six losses an alignment run logs (invariance.align): leaving any one out of the
+    # curves must change the chart, so each is drawn.
+    losses = ("loss_total", "loss_domain", "loss_anchor", "loss_task", "loss_paired", "loss_mean")
+    steps = list(range(0, 200, 10))
+    progress = np.linspace(0, 1, len(steps))
+    curves = {"step": steps, "lambda": (2 / (1 + np.exp(-10 * progress)) - 1).tolist()}
+    curves.update({key: (0.05 * (i + 1) + np.exp(-(i + 1) * progress)).tolist() for i, key in enumerate(losses)})
+    full = plots.alignment_curves(curves)
+    for key in losses:
+        without = plots.alignment_curves({k: v for k, v in curves.items() if k != key})
+        assert without != full, key
+
+
+def test_alignment_chart_knows_every_loss_the_alignment_logs():
+    from invariance.align import LOSS_NAMES
+
+    assert plots.ALIGNMENT_LOSSES == tuple(f"loss_{name}" for name in LOSS_NAMES)
 
 
 def test_sparse_and_odd_results_still_render():

@@ -8,10 +8,10 @@ import pytest
 from invariance.errors import InvarianceError
 from invariance.metrics.drift import paired_drift
 from invariance.options import ScoringOptions
+from invariance.readings import describe_metrics
 from invariance.scoring import (
     _check_finite,
     _projection,
-    describe_metrics,
     load_feature_files,
     score_features,
 )
@@ -189,7 +189,7 @@ def test_readings_say_what_the_numbers_mean(scored):
     names = [row[0] for row in rows]
     assert names[:2] == ["domain classifier accuracy", "MMD^2"]
     domain = rows[0]
-    assert "separates the domains" in domain[3] and domain[1].endswith("%")
+    assert "so the encoder separates the domains" in domain[3] and domain[1].endswith("%")
     assert any(name.startswith("probe colour") for name in names)
     clean, _ = _pairs(n=20, seed=9)
     same = describe_metrics(score_features(clean, clean.copy(), options=ScoringOptions(**FAST))["metrics"])

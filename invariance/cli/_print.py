@@ -9,7 +9,7 @@ from .. import SAFETY_CAUTION
 
 def print_summary(result) -> None:
     """The metrics of one result as a table with plain readings, then warnings and the caution."""
-    from ..scoring import describe_metrics  # moves to readings
+    from ..readings import describe_metrics
 
     rows = describe_metrics(result["metrics"])
     enc = result.get("encoder", {})

@@ -23,7 +23,7 @@ MEDIAN_MAX_POINTS = 3000
 MAX_PAIRS = 4000
 
 # Up to this many pairs the pair kernel matrix is float64 (32 MB); above it float32,
-# per DESIGN.md ("never an n x n matrix in float64 past a few thousand pairs").
+# (docs/design.md: never an n x n float64 matrix past a few thousand pairs).
 FLOAT64_MAX_PAIRS = 2048
 
 # Memory for one block of swap vectors and their products with the matrix (bytes).

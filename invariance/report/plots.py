@@ -29,6 +29,11 @@ ENCODER = "#009E73"     # bluish green: encoder bars never borrow the clean/clut
 PAIRS = "#56B4E9"       # sky blue: per-pair counts
 NEUTRAL = "#6b6b6b"
 
+# The losses an alignment run logs per step, ``loss_<name>`` for each name in
+# invariance.align.LOSS_NAMES (spelled out here: importing that module loads torch).
+ALIGNMENT_LOSSES = ("loss_total", "loss_domain", "loss_anchor", "loss_task", "loss_paired", "loss_mean")
+_LINE_STYLES = ("-", "--", "-.", ":")
+
 ACCURACY_LABEL = "accuracy (fraction of held-out images)"
 DRIFT_LABEL = "relative drift (1 = as far as a different scene)"
 CKA_LABEL = "linear CKA (1 = same representation)"
@@ -262,8 +267,9 @@ def alignment_curves(curves: dict[str, Sequence[float]]) -> bytes | None:
     Parameters
     ----------
     curves : dict
-        ``step`` plus any of ``discriminator_accuracy``, ``val_domain_accuracy``,
-        ``loss_total``, ``loss_anchor``, ``loss_task``, ``lambda``.
+        ``step`` plus any of ``discriminator_accuracy``, ``val_domain_accuracy``, the
+        losses in :data:`ALIGNMENT_LOSSES` and ``lambda``; a curve whose length is not
+        that of ``step`` is left out.
 
     Returns
     -------
@@ -273,29 +279,41 @@ def alignment_curves(curves: dict[str, Sequence[float]]) -> bytes | None:
     steps = np.asarray(curves.get("step") or [], dtype=float)
     if steps.size == 0:
         return None
-    fig = Figure(figsize=(9.0, 2.8), dpi=_DPI)
+    fig = Figure(figsize=(9.6, 3.2), dpi=_DPI)
     FigureCanvasAgg(fig)
     panels = (
-        (("discriminator_accuracy", "val_domain_accuracy"), "domain accuracy (fraction)", 0.5),
-        (("loss_total", "loss_anchor", "loss_task"), "loss (training objective)", None),
-        (("lambda",), "gradient-reversal weight \u03bb", None),
+        (("discriminator_accuracy", "val_domain_accuracy"), "domain accuracy (fraction)", 0.5, False),
+        # The losses span three decades (a mean-matching term of 0.01 beside a total of 40):
+        # on a linear axis all but the largest would lie flat on zero.
+        (ALIGNMENT_LOSSES, "loss (training objective, log scale)", None, True),
+        (("lambda",), "gradient-reversal weight \u03bb", None, False),
     )
-    for i, (keys, ylabel, chance) in enumerate(panels):
+    for i, (keys, ylabel, chance, log) in enumerate(panels):
         ax = fig.add_subplot(1, 3, i + 1)
         _style_axes(ax)
-        for j, key in enumerate(keys):
-            values = _curve(curves.get(key), steps.size)
-            if values is not None:
-                ax.plot(steps, values, color=SERIES[j], linewidth=1.2, label=key.replace("_", " "))
+        _curve_panel(ax, steps, [(key, _curve(curves.get(key), steps.size)) for key in keys], log=log)
         if chance is not None:
             ax.axhline(chance, color=NEUTRAL, linestyle="--", linewidth=0.8, label="chance")
         ax.set_xlabel("training step", fontsize=7)
         ax.set_ylabel(ylabel, fontsize=7)
         ax.tick_params(labelsize=6)
         if ax.get_legend_handles_labels()[0]:
-            ax.legend(fontsize=6, frameon=False)
+            ax.legend(fontsize=6, frameon=False, ncol=2 if len(keys) > 3 else 1)
     fig.tight_layout()
     return _png(fig, tight=False)
+
+
+def _curve_panel(ax, steps: np.ndarray, series: list[tuple[str, np.ndarray | None]], *, log: bool) -> None:
+    drawn = []
+    for j, (key, values) in enumerate(series):
+        if values is None:
+            continue
+        # Up to six lines share a panel: the line style tells them apart in grey print.
+        ax.plot(steps, values, color=SERIES[j % len(SERIES)], linestyle=_LINE_STYLES[j % len(_LINE_STYLES)],
+                linewidth=1.2, label=key.replace("_", " "))
+        drawn.append(values)
+    if log and any(np.nanmax(v, initial=0.0) > 0 for v in drawn):
+        ax.set_yscale("log", nonpositive="mask")  # a loss of exactly 0 leaves a gap
 
 
 def _figure(size: tuple[float, float]):
