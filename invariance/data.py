@@ -181,7 +181,7 @@ def discover_pairs(path, *, skip_unpaired: bool = False, labels: bool = True) ->
     if unpaired and not skip_unpaired:
         raise InvarianceError(
             f"{len(unpaired)} images in {path} have no partner: {_listing(unpaired)}; "
-            "add the missing views or pass --skip-unpaired to go on without them"
+            "add the missing views or pass skip_unpaired=True (--skip-unpaired) to go on without them"
         )
     if not names:
         raise InvarianceError(f"no file name appears in both {clean_dir} and {cluttered_dir}; the two views of a scene must share a name")

@@ -117,7 +117,7 @@ def _replace_dir(path: Path) -> None:
 
     if path.exists():
         if not path.is_dir():
-            raise InvarianceError(f"{path} exists and is not a folder; remove it or choose another --out")
+            raise InvarianceError(f"{path} exists and is not a folder; remove it or choose another out_dir (--out)")
         shutil.rmtree(path)
 
 
