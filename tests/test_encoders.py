@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import sys
 import textwrap
 
@@ -18,7 +19,7 @@ from invariance import encoders
 from invariance.data import PairSet, load_rgb
 from invariance.options import ExtractionOptions
 from invariance.encoders import Preprocess, extract_features, load_encoder, save_checkpoint
-from invariance.errors import InvarianceError
+from invariance.errors import InvalidParameter, InvarianceError
 
 SIZE = 32
 
@@ -257,7 +258,7 @@ def test_vit_b_16_builds_and_lists_encoder_blocks():
     names = encoders.available_layers(enc)
     assert "encoder.layers.encoder_layer_11" in names and "encoder.ln" in names
     assert isinstance(enc.module.heads, torch.nn.Identity)
-    with pytest.raises(InvarianceError, match="exactly 224 px.*--image-size 224"):
+    with pytest.raises(InvarianceError, match="exactly 224 px.*image_size=224"):
         load_encoder("torchvision:vit_b_16", device="cpu", image_size=64)
 
 
@@ -315,14 +316,15 @@ def test_missing_and_unreadable_weights_files(tmp_path):
         load_encoder("torchvision:resnet18", weights=tmp_path / "nope.pt", device="cpu")
     junk = tmp_path / "junk.pt"
     junk.write_bytes(b"not a torch file")
-    with pytest.raises(InvarianceError, match="cannot read weights file .*junk.pt"):
+    with pytest.raises(InvarianceError, match="cannot read weights file .*junk.pt") as err:
         load_encoder("torchvision:resnet18", weights=junk, device="cpu")
+    assert "weights_only" not in str(err.value) and "\n" not in str(err.value)
 
 
 def test_hub_weights_load_only_from_local_cache(tmp_path, monkeypatch):
     monkeypatch.setenv("TORCH_HOME", str(tmp_path / "torch"))
     weights = torchvision.models.ResNet18_Weights.IMAGENET1K_V1
-    with pytest.raises(InvarianceError, match="not in the local torch hub cache.*--weights FILE"):
+    with pytest.raises(InvarianceError, match="not in the local torch hub cache.*weights=FILE"):
         load_encoder("torchvision:resnet18@IMAGENET1K_V1", device="cpu")
     # torch.hub's cache layout: <TORCH_HOME>/hub/checkpoints/<file name of the url>.
     cached = tmp_path / "torch" / "hub" / "checkpoints" / weights.url.rsplit("/", 1)[-1]
@@ -428,9 +430,9 @@ def test_non_tensor_output_is_refused(pairs, user_file):
 
 def test_images_too_small_for_the_network_suggest_image_size(pairs, user_file):
     enc = load_encoder(f"python:{user_file}:big_kernel", device="cpu")
-    with pytest.raises(InvarianceError, match="failed on 32 px inputs.*larger --image-size"):
+    with pytest.raises(InvarianceError, match="failed on 32 px inputs.*larger image_size"):
         extract_features(pairs, enc, progress=False)
-    with pytest.warns(FutureWarning), pytest.raises(InvarianceError, match="at least 75 px.*--image-size 75"):
+    with pytest.warns(FutureWarning), pytest.raises(InvarianceError, match="at least 75 px.*image_size=75"):
         # torchvision's metadata for inception_v3: min_size (75, 75).
         load_encoder("torchvision:inception_v3", device="cpu", image_size=64)
 
@@ -441,6 +443,157 @@ def test_unreadable_image_is_named(pairs, resnet18):
         with pytest.raises(InvarianceError, match="scene_2.png") as err:
             extract_features(pairs, resnet18, progress=False, num_workers=workers)
         assert "\n" not in str(err.value)
+
+
+PROJECT_MODULE = """
+from torch import nn
+
+
+def build_encoder():
+    model = nn.Sequential(nn.Conv2d(3, 4, 3), nn.AdaptiveAvgPool2d(1), nn.Flatten())
+    model.invariance_preprocess = {"image_size": 32}
+    return model
+"""
+
+PROJECT_SCRIPT = """
+from __future__ import annotations  # string annotations: dataclass looks the module up by name
+
+from dataclasses import dataclass
+
+from torch import nn
+
+from widths import WIDTH  # a module next to this file
+
+
+@dataclass
+class Config:
+    width: int = WIDTH
+
+
+def build():
+    model = nn.Sequential(nn.Conv2d(3, Config().width, 3), nn.AdaptiveAvgPool2d(1), nn.Flatten())
+    model.invariance_preprocess = {"image_size": 32}
+    return model
+"""
+
+
+@pytest.fixture
+def project(tmp_path, monkeypatch):
+    """A project folder made current but absent from the import path, as under the installed
+    ``invariance`` command (whose import path starts at its script's folder)."""
+    root = tmp_path / "project"
+    (root / "my_pkg").mkdir(parents=True)
+    (root / "my_pkg" / "__init__.py").write_text("")
+    (root / "my_pkg" / "models.py").write_text(PROJECT_MODULE)
+    (root / "scripts").mkdir()
+    (root / "scripts" / "encoder.py").write_text(PROJECT_SCRIPT)
+    (root / "scripts" / "widths.py").write_text("WIDTH = 5\n")
+    monkeypatch.chdir(root)
+    monkeypatch.setattr(sys, "path", [p for p in sys.path if p not in ("", ".", str(root), str(root / "scripts"))])
+    yield root
+    for name in ("my_pkg", "my_pkg.models", "widths"):
+        sys.modules.pop(name, None)
+
+
+def test_python_module_spec_is_found_in_the_current_folder(project, pairs):
+    # `python -m` puts the current folder first on the import path (Python docs, "Command
+    # line and environment", -m); a python: spec finds the user's module the same way.
+    path_before = list(sys.path)
+    enc = load_encoder("python:my_pkg.models:build_encoder", device="cpu")
+    assert sys.path == path_before  # the folder was on the path only for that import
+    assert enc.code_sha256 == hashlib.sha256((project / "my_pkg" / "models.py").read_bytes()).hexdigest()
+    clean, cluttered = extract_features(pairs, enc, progress=False)["output"]
+    assert clean.shape == cluttered.shape == (len(pairs), 4)
+
+
+def test_python_file_spec_relative_to_the_current_folder(project):
+    # `python path/to/file.py` puts the file's folder first on the import path (Python docs,
+    # "The Module Search Path"), and the import system registers a module in sys.modules
+    # while it runs (importlib docs, "Importing a source file directly"), which dataclasses need.
+    path_before = list(sys.path)
+    enc = load_encoder("python:scripts/encoder.py:build", device="cpu")
+    assert sys.path == path_before
+    assert enc.code_sha256 == hashlib.sha256((project / "scripts" / "encoder.py").read_bytes()).hexdigest()
+    with torch.inference_mode():
+        assert enc(torch.zeros(2, 3, SIZE, SIZE)).shape == (2, 5)
+
+
+def test_messages_name_parameters_not_command_line_flags(tmp_path, pairs, resnet18, monkeypatch):
+    monkeypatch.setenv("TORCH_HOME", str(tmp_path / "torch"))  # an empty hub cache
+    junk = tmp_path / "w.pt"
+    junk.write_bytes(b"x")
+    calls = {
+        "image_size": lambda: load_encoder("torchvision:resnet18", device="cpu", image_size=0),
+        "weights": lambda: load_encoder("torchscript:m.pt", weights=junk, device="cpu"),
+        "hub": lambda: load_encoder("torchvision:resnet18@IMAGENET1K_V1", device="cpu"),
+        "both weights": lambda: load_encoder("torchvision:resnet18@IMAGENET1K_V1", weights=junk, device="cpu"),
+        "missing weights": lambda: load_encoder("torchvision:resnet18", weights=tmp_path / "no.pt", device="cpu"),
+        "layer": lambda: extract_features(pairs, resnet18, ["qqqqqqqqqqqq"], progress=False),
+    }
+    if not torch.cuda.is_available():
+        calls["device"] = lambda: load_encoder("torchvision:resnet18", device="cuda")
+    for what, call in calls.items():
+        with pytest.raises(InvarianceError) as err:
+            call()
+        assert "--" not in str(err.value), what
+    with pytest.raises(InvalidParameter, match="image_size=0 is not valid") as err:
+        calls["image_size"]()
+    assert err.value.parameter == "image_size"
+    with pytest.raises(InvalidParameter, match="weights=.*only applies to torchvision") as err:
+        calls["weights"]()
+    assert err.value.parameter == "weights"
+
+
+class _MakesFolder:
+    """Unpickling it creates a folder: it stands for a pickle that runs arbitrary code."""
+
+    def __init__(self, path):
+        self.path = path
+
+    def __reduce__(self):
+        return (os.mkdir, (str(self.path),))
+
+
+def _hub_file_with(tmp_path, monkeypatch, payload):
+    monkeypatch.setenv("TORCH_HOME", str(tmp_path / "torch"))
+    url = torchvision.models.ResNet18_Weights.IMAGENET1K_V1.url
+    # torch.hub's cache layout: <TORCH_HOME>/hub/checkpoints/<file name of the url>.
+    path = tmp_path / "torch" / "hub" / "checkpoints" / url.rsplit("/", 1)[-1]
+    path.parent.mkdir(parents=True)
+    torch.save(payload, path)
+    return "torchvision:resnet18@IMAGENET1K_V1", {}
+
+
+def _weights_with(tmp_path, monkeypatch, payload):
+    torch.save(payload, tmp_path / "w.pt")
+    return "torchvision:resnet18", {"weights": tmp_path / "w.pt"}
+
+
+def _checkpoint_with(tmp_path, monkeypatch, payload):
+    torch.save({"format": encoders.CHECKPOINT_FORMAT, **payload}, tmp_path / "c.pt")
+    return f"checkpoint:{tmp_path / 'c.pt'}", {}
+
+
+def _python_loading(tmp_path, monkeypatch, payload):
+    torch.save(payload, tmp_path / "p.pt")
+    code = f"import torch\n\ndef build():\n    return torch.load({str(tmp_path / 'p.pt')!r}, weights_only=True)\n"
+    (tmp_path / "loads.py").write_text(code)
+    return f"python:{tmp_path / 'loads.py'}:build", {}
+
+
+@pytest.mark.parametrize("make", [_hub_file_with, _weights_with, _checkpoint_with, _python_loading])
+def test_pickled_objects_are_refused_without_torch_advice(tmp_path, monkeypatch, make):
+    # torch.load(weights_only=True) refuses any global outside its allow-list (PyTorch docs,
+    # torch.load); its message then advises weights_only=False, which would run the pickle.
+    marker = tmp_path / "ran"
+    payload = {"conv1.weight": torch.zeros(1), "extra": _MakesFolder(marker)}
+    spec, kwargs = make(tmp_path, monkeypatch, payload)
+    with pytest.raises(InvarianceError, match=r"pickled (posix|nt)\.mkdir.*never unpickles") as err:
+        load_encoder(spec, device="cpu", **kwargs)
+    message = str(err.value)
+    assert not marker.exists()
+    assert "weights_only" not in message and "trust" not in message
+    assert "\x1b" not in message and "\n" not in message
 
 
 # --------------------------------------------------------------------------- checkpoints
@@ -496,7 +649,7 @@ def test_resolve_device():
     with pytest.raises(InvarianceError, match="not one of auto, cpu, cuda"):
         encoders.resolve_device("gpu")
     if not torch.cuda.is_available():
-        with pytest.raises(InvarianceError, match="no CUDA device.*--device cpu"):
+        with pytest.raises(InvarianceError, match="no CUDA device.*device='cpu'"):
             encoders.resolve_device("cuda")
 
 
@@ -509,5 +662,5 @@ def test_extract_parameters_are_validated(pairs, resnet18):
         extract_features(pairs, resnet18, layers="layer1")
     with pytest.raises(InvarianceError, match="no image pairs"):
         extract_features(pairs.subset([]), resnet18)
-    with pytest.raises(InvarianceError, match="--image-size must be a positive integer"):
+    with pytest.raises(InvarianceError, match="image_size=0 is not valid"):
         load_encoder("torchvision:resnet18", device="cpu", image_size=0)

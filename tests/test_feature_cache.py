@@ -12,10 +12,10 @@ import torch
 import torchvision
 from PIL import Image
 
-from invariance import feature_cache
 from invariance.data import PairSet
-from invariance.options import ExtractionOptions
+from invariance.encoders import cache as feature_cache
 from invariance.encoders import extract_features, load_encoder
+from invariance.options import ExtractionOptions
 from invariance.errors import InvarianceError
 
 SIZE = 32

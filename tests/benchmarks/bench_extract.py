@@ -5,8 +5,9 @@
 Times end-to-end ``extract_features`` of the sample pairs with torchvision:resnet18 at
 224 px for each worker count, bracketed by the bare forward pass on the same preloaded
 tensors (target: within 1.15x), and the share of decoding + preprocessing (the most a
-worker can hide). This is the measurement behind ``encoders.DEFAULT_NUM_WORKERS``; the
-cache speed-up and memory figures come from ``invariance bench``.
+worker can hide). This is the measurement behind
+``invariance.encoders.DEFAULT_NUM_WORKERS``; the cache speed-up and memory figures come
+from ``invariance bench``.
 """
 
 from __future__ import annotations

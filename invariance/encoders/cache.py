@@ -21,21 +21,46 @@ import numpy as np
 
 from invariance._io import atomic_write_bytes
 
+from .weights import _state_sha256
+
 FORMAT = "invariance.features/1"
 
 
 def cache_key(parts: dict) -> str:
-    """SHA-256 of ``parts`` written as canonical JSON (sorted keys, no spaces)."""
+    """SHA-256 of ``parts`` written as canonical JSON (sorted keys, no spaces).
+
+    Parameters
+    ----------
+    parts : dict
+        Everything that changes the features; values that JSON cannot hold are written
+        with ``str``.
+
+    Returns
+    -------
+    str
+        64 hexadecimal digits.
+    """
     text = json.dumps(parts, sort_keys=True, separators=(",", ":"), default=str)
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
 
 def entry_path(cache_dir, key: str) -> Path:
+    """Where the entry of ``key`` lives in ``cache_dir``."""
     return Path(cache_dir) / f"{key}.npz"
 
 
 def array_checksum(clean: np.ndarray, cluttered: np.ndarray) -> str:
-    """SHA-256 over dtype, shape and bytes of both matrices (detects bit rot and edits)."""
+    """SHA-256 over dtype, shape and bytes of both matrices (detects bit rot and edits).
+
+    Parameters
+    ----------
+    clean, cluttered : numpy.ndarray
+
+    Returns
+    -------
+    str
+        64 hexadecimal digits.
+    """
     digest = hashlib.sha256()
     for arr in (clean, cluttered):
         arr = np.ascontiguousarray(arr)
@@ -45,7 +70,23 @@ def array_checksum(clean: np.ndarray, cluttered: np.ndarray) -> str:
 
 
 def store(cache_dir, key: str, clean: np.ndarray, cluttered: np.ndarray, header: dict) -> Path:
-    """Write one entry atomically; ``header`` is completed with format, key, shapes and checksum."""
+    """Write one entry atomically.
+
+    Parameters
+    ----------
+    cache_dir : path
+    key : str
+        From :func:`cache_key`.
+    clean, cluttered : numpy.ndarray
+        (pairs, D) features, stored as float32.
+    header : dict
+        Where the features came from; completed with format, key, shape and checksum.
+
+    Returns
+    -------
+    Path
+        The entry written.
+    """
     clean = np.ascontiguousarray(clean, dtype=np.float32)
     cluttered = np.ascontiguousarray(cluttered, dtype=np.float32)
     full = dict(header)
@@ -67,6 +108,19 @@ def load(cache_dir, key: str, *, rows: int, content_hash: str):
     A present entry that cannot be read, belongs to another key or image set, has the
     wrong number of rows or fails its checksum is deleted with a warning, so the caller
     extracts again and writes a fresh one.
+
+    Parameters
+    ----------
+    cache_dir : path
+    key : str
+    rows : int
+        Number of pairs the entry must hold.
+    content_hash : str
+        The image set's ``content_hash()`` the entry must have been written for.
+
+    Returns
+    -------
+    tuple of numpy.ndarray or None
     """
     path = entry_path(cache_dir, key)
     if not path.is_file():
@@ -106,7 +160,7 @@ def _problem(header: dict, clean, cluttered, *, key: str, rows: int, content_has
     return None
 
 
-def _discard(path: Path, reason: str) -> None:
+def _discard(path: Path, reason: str):
     warnings.warn(
         f"feature cache entry {path} is {reason}; deleting it and extracting again",
         RuntimeWarning,
@@ -115,3 +169,37 @@ def _discard(path: Path, reason: str) -> None:
     with contextlib.suppress(FileNotFoundError):
         path.unlink()
     return None
+
+
+def layer_keys(pairs, encoder, layers: list[str]) -> dict[str, str]:
+    """The cache key of each layer of ``encoder`` on ``pairs``.
+
+    Parameters
+    ----------
+    pairs : invariance.data.PairSet
+    encoder : invariance.encoders.Encoder
+    layers : list of str
+
+    Returns
+    -------
+    dict
+        ``{layer: key}``; the key covers spec, weights file, module state, code,
+        preprocessing, image content, cache format and layer.
+    """
+    # The module state is hashed on every call: a module trained in place (alignment) must
+    # never be served the features of its earlier weights.
+    base = {
+        "spec": encoder.spec,
+        "weights_sha256": encoder.weights_sha256,
+        "state_sha256": _state_sha256(encoder.module),
+        "code_sha256": encoder.code_sha256,
+        "preprocess": encoder.preprocess.describe(),
+        "content_hash": pairs.content_hash(),
+        "format": FORMAT,
+    }
+    return {layer: cache_key({**base, "layer": layer}) for layer in layers}
+
+
+def layer_header(pairs, encoder, layer: str) -> dict:
+    """What an entry's header says about where its features came from."""
+    return {"spec": encoder.spec, "layer": layer, "content_hash": pairs.content_hash(), "pairs": len(pairs)}

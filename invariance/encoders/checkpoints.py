@@ -1,0 +1,95 @@
+"""Checkpoints: a module's weights with the spec that rebuilds its architecture.
+
+A checkpoint is a ``torch.save``'d dict that ``torch.load(weights_only=True)`` reads back:
+``format``, ``source_spec``/``source_weights`` (the encoder it was derived from), ``arch``,
+``preprocess``, ``state_dict`` and free-form ``metadata``. ``checkpoint:FILE`` specs load it.
+"""
+
+from __future__ import annotations
+
+import io
+from pathlib import Path
+
+import torch
+
+from invariance._io import atomic_write_bytes
+from invariance.errors import InvarianceError
+
+from .encoder import Encoder
+from .loaders import _MODULE_LOADERS
+from .preprocess import Preprocess
+from .weights import _existing_file, _file_sha256, _load_state, _torch_load
+
+CHECKPOINT_FORMAT = "invariance.checkpoint/1"
+
+_WRITE_IT = "write it with save_checkpoint or invariance align"
+
+
+def save_checkpoint(path, *, encoder: Encoder, module: torch.nn.Module, metadata: dict) -> Path:
+    """Write ``module``'s weights as a checkpoint that ``checkpoint:PATH`` loads.
+
+    Parameters
+    ----------
+    path : path
+        Output file, written atomically (a failure leaves no partial file).
+    encoder : Encoder
+        The encoder ``module`` was derived from; its source spec rebuilds the architecture.
+    module : torch.nn.Module
+        Same architecture as ``encoder.module`` (for example after alignment).
+    metadata : dict
+        Anything ``torch.load(weights_only=True)`` can read back (numbers, strings, lists, dicts).
+
+    Returns
+    -------
+    Path
+    """
+    if not isinstance(encoder, Encoder):
+        raise InvarianceError(f"save_checkpoint needs an Encoder, got {type(encoder).__name__}")
+    if not isinstance(module, torch.nn.Module):
+        raise InvarianceError(f"save_checkpoint needs a torch.nn.Module, got {type(module).__name__}")
+    if not isinstance(metadata, dict):
+        raise InvarianceError(f"save_checkpoint metadata must be a dict, got {type(metadata).__name__}")
+    payload = {
+        "format": CHECKPOINT_FORMAT,
+        "source_spec": encoder.source.get("spec", encoder.spec),
+        "source_weights": encoder.source.get("weights"),
+        "arch": encoder.arch,
+        "preprocess": encoder.preprocess.describe(),
+        "state_dict": {k: v.detach().cpu().clone() for k, v in module.state_dict().items()},
+        "metadata": metadata,
+    }
+    buf = io.BytesIO()
+    torch.save(payload, buf)
+    return atomic_write_bytes(path, buf.getvalue())
+
+
+def _load_checkpoint(spec: str, rest: str, weights) -> Encoder:
+    """``checkpoint:FILE``: rebuild the source architecture, then load every weight."""
+    path = _existing_file(rest, spec)
+    ckpt = _torch_load(path, "checkpoint", _WRITE_IT)
+    if not isinstance(ckpt, dict) or ckpt.get("format") != CHECKPOINT_FORMAT:
+        raise InvarianceError(f"{path} is not an invariance checkpoint ({CHECKPOINT_FORMAT}); {_WRITE_IT}")
+    base = _rebuild_source(path, ckpt)
+    if base.arch != ckpt.get("arch"):
+        raise InvarianceError(
+            f"checkpoint {path} was saved from architecture {ckpt.get('arch')!r} but its source "
+            f"{ckpt['source_spec']} now builds {base.arch!r}; restore the source encoder"
+        )
+    _load_state(base.module, ckpt["state_dict"], source=str(path), target=ckpt["source_spec"])
+    return Encoder(
+        spec=spec, module=base.module.eval(), preprocess=Preprocess(**ckpt["preprocess"]),
+        weights_sha256=_file_sha256(path), arch=base.arch, device=torch.device("cpu"), weights=str(path),
+        kind="checkpoint", layout=base.layout, source=dict(base.source), code_sha256=base.code_sha256,
+    )
+
+
+def _rebuild_source(path: Path, ckpt: dict) -> Encoder:
+    source = ckpt.get("source_spec")
+    kind, _, rest = source.partition(":") if isinstance(source, str) else ("", "", "")
+    if kind not in _MODULE_LOADERS:
+        raise InvarianceError(f"checkpoint {path} names no usable source encoder ({source!r}); {_WRITE_IT}")
+    # The checkpoint holds every weight, so a torchvision source needs only its architecture,
+    # not the weights file it was first loaded from.
+    enc = _MODULE_LOADERS[kind](source, rest, None)
+    enc.source = {"spec": source, "weights": ckpt.get("source_weights")}
+    return enc
