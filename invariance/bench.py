@@ -195,11 +195,10 @@ def bench_align_step(image_size: int = 128, batch_size: int = 32, steps: int = 5
     twice a forward).
     """
     import torch
-    from torch import nn
     from torch.nn import functional as F
 
-    from .align import (DISCRIMINATOR_HIDDEN, _whitening, gradient_reversal, mean_matching_loss, paired_loss,
-                        split_module)
+    from .align import (domain_loss, make_discriminator, mean_matching_loss, paired_loss, paired_variance,
+                        split_module, whitening)
     from .encoders import load_encoder
 
     torch.manual_seed(0)
@@ -211,19 +210,17 @@ def bench_align_step(image_size: int = 128, batch_size: int = 32, steps: int = 5
         anchor = tail(cached)
         # the cached step is only a fair stand-in if trunk then tail is the whole network
         split_error = float((anchor - module(x)).abs().max())
-    disc = nn.Sequential(nn.Linear(anchor.shape[1], DISCRIMINATOR_HIDDEN), nn.ReLU(), nn.Linear(DISCRIMINATOR_HIDDEN, 1))
+    disc = make_discriminator(anchor.shape[1], torch.Generator().manual_seed(0))
     half = batch_size // 2
-    domain = torch.cat([torch.zeros(half), torch.ones(batch_size - half)])
-    whitening, variance = _whitening(anchor), anchor.var(dim=0).clamp_min(1e-6)
+    white, variance = whitening(anchor), paired_variance(anchor)
     tail_opt = torch.optim.Adam([*tail.parameters(), *disc.parameters()], lr=1e-5)
     whole_opt = torch.optim.Adam([*module.parameters(), *disc.parameters()], lr=1e-5)
 
     def step(optimizer, features):
-        logits = disc(gradient_reversal(features, 1.0)).squeeze(1)
         clean, cluttered = features[:half], features[half : 2 * half]
-        loss = (F.binary_cross_entropy_with_logits(logits, domain) + F.mse_loss(features, anchor)
+        loss = (domain_loss(disc, clean, cluttered, 1.0)[0] + F.mse_loss(features, anchor)
                 + paired_loss(clean, cluttered, variance)
-                + mean_matching_loss(clean, cluttered, whitening))
+                + mean_matching_loss(clean, cluttered, white))
         optimizer.zero_grad(set_to_none=True)
         loss.backward()
         optimizer.step()

@@ -402,3 +402,10 @@ def read_labels_in_order(path, n_rows: int) -> tuple[list[str], LabelTable]:
     _refuse_duplicates(path, names)
     table = _label_table(path, header[1:], [(r[0], r[1:]) for _, r in rows], [ln for ln, _ in rows])
     return names, table
+
+
+def label_columns(pairs) -> tuple[dict | None, dict | None]:
+    """The probe tasks and clutter factors of a PairSet, each ``None`` when it has none."""
+    if pairs.labels is None:
+        return None, None
+    return pairs.labels.tasks or None, pairs.labels.factors or None

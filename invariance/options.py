@@ -227,4 +227,15 @@ class EncoderEntry:
         return self.name or self.spec
 
 
-__all__ = ["ExtractionOptions", "ScoringOptions", "AlignmentOptions", "Gates", "EncoderEntry"]
+
+
+def options_or_default(value, cls, name: str):
+    """``value`` if it is a ``cls``, ``cls()`` if it is None, else :class:`InvalidParameter`."""
+    if value is None:
+        return cls()
+    if not isinstance(value, cls):
+        raise InvalidParameter(name, f"{name}={value!r} is not valid; pass a {cls.__name__} or None")
+    return value
+
+
+__all__ = ["ExtractionOptions", "ScoringOptions", "AlignmentOptions", "Gates", "EncoderEntry", "options_or_default"]

@@ -18,7 +18,8 @@ import numpy as np
 
 from . import __version__
 from .errors import InvalidParameter, InvarianceError
-from .options import AlignmentOptions, EncoderEntry, ExtractionOptions, ScoringOptions
+from .data import label_columns
+from .options import AlignmentOptions, EncoderEntry, ExtractionOptions, ScoringOptions, options_or_default
 from .progress import as_reporter
 from .results import RESULT_SCHEMA
 
@@ -59,20 +60,6 @@ def environment_info(*, seed: int, device: str | None = None, command: str | Non
     except ImportError:  # the --features path needs no torch
         pass
     return info
-
-
-def _checked(value, cls, name):
-    if value is None:
-        return cls()
-    if not isinstance(value, cls):
-        raise InvalidParameter(name, f"{name}={value!r} is not valid; pass a {cls.__name__}")
-    return value
-
-
-def _labels_of(pairs):
-    if pairs.labels is None:
-        return None, None
-    return pairs.labels.tasks or None, pairs.labels.factors or None
 
 
 def _dataset_info(pairs) -> dict:
@@ -132,8 +119,8 @@ def score_dataset(data, spec: str, *, weights=None, layers: Sequence[str] | None
     dict
         A result in the ``invariance.result/1`` schema.
     """
-    extraction = _checked(extraction, ExtractionOptions, "extraction")
-    scoring = _checked(scoring, ScoringOptions, "scoring")
+    extraction = options_or_default(extraction, ExtractionOptions, "extraction")
+    scoring = options_or_default(scoring, ScoringOptions, "scoring")
     if pairs is None:
         pairs = _discover(data, extraction)
     from .encoders import extract_features  # after the data checks: bad data fails fast
@@ -158,7 +145,7 @@ def _score_layers(features: dict, layer_list, pairs, scoring: ScoringOptions) ->
 
     from .scoring import score_features
 
-    tasks, factors = _labels_of(pairs)
+    tasks, factors = label_columns(pairs)
     per_layer = {}
     for layer in layer_list:
         clean, cluttered = features[layer]
@@ -195,7 +182,7 @@ def score_feature_arrays(clean: np.ndarray, cluttered: np.ndarray, *, tasks=None
     """
     from .scoring import score_features
 
-    scoring = _checked(scoring, ScoringOptions, "scoring")
+    scoring = options_or_default(scoring, ScoringOptions, "scoring")
     start = time.perf_counter()
     scored = score_features(clean, cluttered, tasks=tasks, factors=factors, names=names, options=scoring)
     elapsed = time.perf_counter() - start
@@ -244,8 +231,8 @@ def compare_encoders(data, encoders: Sequence, *, extraction: ExtractionOptions 
     """
     from .results import make_comparison
 
-    extraction = _checked(extraction, ExtractionOptions, "extraction")
-    scoring = _checked(scoring, ScoringOptions, "scoring")
+    extraction = options_or_default(extraction, ExtractionOptions, "extraction")
+    scoring = options_or_default(scoring, ScoringOptions, "scoring")
     entries = [_entry(item) for item in encoders]
     if not entries:
         raise InvalidParameter("encoders", "encoders=[] is not valid; pass at least one encoder")
@@ -280,9 +267,9 @@ def align_dataset(data, spec: str, *, out, weights=None, alignment: AlignmentOpt
     """
     from .align import align_encoder
 
-    alignment = _checked(alignment, AlignmentOptions, "alignment")
-    scoring = _checked(scoring, ScoringOptions, "scoring")
-    extraction = _checked(extraction, ExtractionOptions, "extraction")
+    alignment = options_or_default(alignment, AlignmentOptions, "alignment")
+    scoring = options_or_default(scoring, ScoringOptions, "scoring")
+    extraction = options_or_default(extraction, ExtractionOptions, "extraction")
     if pairs is None:
         pairs = _discover(data, extraction)
     encoder = _load(spec, weights, extraction)

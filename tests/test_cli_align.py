@@ -1,4 +1,5 @@
-"""`invariance align` on the command line: the DESIGN.md contract (exit codes, outputs, options).
+"""`invariance align` on the command line: the contract of docs/design.md (exit codes, outputs,
+options).
 
 The alignment itself is checked against outside references in test_align.py; here the
 command's plumbing is checked: every option reaches the library, the checkpoint loads as

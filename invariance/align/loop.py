@@ -1,0 +1,260 @@
+"""The training loop: cached activations in, the best validated tail state out, with curves.
+
+Batch normalisation keeps its running statistics (the tail stays in eval mode): a mixed
+clean/cluttered batch of a few dozen would otherwise overwrite the statistics the
+checkpoint ships with. The state with the lowest validation drift is kept, because the
+slice's domain accuracy moves in coarse, noisy steps and sits near 1 while clutter still
+separates the domains, whereas drift falls smoothly as scenes align. The measurements
+behind these choices are in ``docs/alignment.md``.
+
+References
+----------
+Ganin et al. (2016). Domain-adversarial training of neural networks. JMLR 17, 59:1-35,
+section 5.2.2 (the schedules).
+Kingma, D. P. & Ba, J. (2015). Adam: a method for stochastic optimization. ICLR 2015.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+
+import numpy as np
+import torch
+from torch import nn
+
+from .heads import _task_loss
+from .losses import anchor_loss, domain_loss, mean_matching_loss, paired_loss, paired_variance, whitening
+from .monitor import _guard_failure, check_slice
+from .reversal import dann_lambda, dann_learning_rate, make_discriminator
+from .trunk import tail_features
+
+# The parts of _Run.losses logged as ``loss_<name>`` curves, shown in progress lines and
+# saved as the checkpoint's final losses.
+LOSS_NAMES = ("total", "domain", "anchor", "task", "paired", "mean")
+# Steps between validation checks: the kept state is chosen among 40 checked ones in the
+# default 800 steps (common practice).
+EVAL_EVERY = 20
+
+
+class _Run:
+    """Everything one alignment run trains on: cached activations, frozen targets, models.
+
+    Parameters
+    ----------
+    tail : nn.Module
+        The trained stages.
+    act_clean, act_cluttered : torch.Tensor
+        Cached trunk activations of every alignment pair's two views.
+    train_pos, val_pos : ndarray of int
+        Positions of the training pairs and of the validation slice among the alignment pairs.
+    tasks : list of dict
+        Warm-started task heads (see :mod:`invariance.align.heads`).
+    head_input : tuple of (torch.Tensor, float)
+        Mean and spread that standardise features for the heads.
+    seed : int
+        Seeds the discriminator's initial weights, the batch order and the slice checks
+        through local generators; the caller's global random state is not touched.
+    """
+
+    def __init__(self, tail, act_clean, act_cluttered, train_pos, val_pos, tasks, head_input, seed):
+        self.tail, self.act_clean, self.act_cluttered = tail, act_clean, act_cluttered
+        self.train_pos, self.val_pos, self.tasks = train_pos, val_pos, tasks
+        self.head_input, self.seed = head_input, seed
+        self.f0_clean = tail_features(tail, act_clean)
+        f0_train = self.f0_clean[train_pos]
+        self.scale = f0_train.var(dim=0).mean().clamp_min(1e-12)
+        self.feature_var = paired_variance(f0_train)
+        self.whitening = whitening(f0_train)
+        device = self.f0_clean.device
+        generator = torch.Generator().manual_seed(seed)
+        self.discriminator = make_discriminator(self.f0_clean.shape[1], generator).to(device)
+        for task in tasks:
+            task["head"].to(device)
+            task["target"], task["mask"] = task["target"].to(device), task["mask"].to(device)
+        self.rng = np.random.default_rng([seed, 2])
+        self._queue = np.empty(0, dtype=int)
+
+    def parameters(self) -> list[nn.Parameter]:
+        params = [p for p in self.tail.parameters() if p.requires_grad]
+        params += list(self.discriminator.parameters())
+        return params + [p for t in self.tasks for p in t["head"].parameters()]
+
+    def next_batch(self, batch_size: int) -> np.ndarray:
+        """Positions (into the alignment arrays) of the next batch: epochs of seeded shuffles."""
+        if len(self._queue) < batch_size:
+            self._queue = np.concatenate([self._queue, self.rng.permutation(self.train_pos)])
+        batch, self._queue = self._queue[:batch_size], self._queue[batch_size:]
+        return batch
+
+    def losses(self, batch, lambda_: float, weights: dict) -> dict:
+        """Every loss term of ``batch`` and their weighted total (see :func:`align_encoder`)."""
+        f_clean = self.tail(self.act_clean[batch])
+        f_clut = self.tail(self.act_cluttered[batch])
+        parts = {}
+        parts["domain"], parts["discriminator_accuracy"] = domain_loss(self.discriminator, f_clean, f_clut, lambda_)
+        parts["anchor"] = anchor_loss(f_clean, self.f0_clean[batch], self.scale)
+        head_features = (f_clean - self.head_input[0]) / self.head_input[1]
+        parts["task"] = _task_loss(self.tasks, head_features, torch.as_tensor(batch))
+        parts["paired"] = paired_loss(f_clean, f_clut, self.feature_var)
+        parts["mean"] = mean_matching_loss(f_clean, f_clut, self.whitening)
+        # The mean term is an adaptation loss like the domain term, so it follows the same
+        # lambda_p ramp: at full weight from step 0 its early gradients, while the means are
+        # still far apart, overrode the anchor and tripped the clean probe guard.
+        parts["total"] = (parts["domain"] + weights["anchor"] * parts["anchor"] + weights["task"] * parts["task"]
+                          + weights["paired"] * parts["paired"] + weights["mean"] * lambda_ * parts["mean"])
+        return parts
+
+    def validate(self) -> dict:
+        """The slice checks of :func:`invariance.align.monitor.check_slice` on the current tail."""
+        f_clean = tail_features(self.tail, self.act_clean).cpu().numpy()
+        f_clut = tail_features(self.tail, self.act_cluttered[self.val_pos]).cpu().numpy()
+        return check_slice(f_clean, f_clut, self.tasks, self.train_pos, self.val_pos, self.seed)
+
+
+def _empty_curves() -> dict:
+    keys = ["step", "discriminator_accuracy", *(f"loss_{k}" for k in LOSS_NAMES), "lambda", "learning_rate",
+            "val_domain_accuracy", "val_relative_drift", "val_clean_probe"]
+    return {k: [] for k in keys}
+
+
+def _record(curves: dict, step: int, means: dict, lambda_: float, lr: float, val: dict) -> None:
+    curves["step"].append(int(step))
+    curves["discriminator_accuracy"].append(round(means["discriminator_accuracy"], 6))
+    for key in LOSS_NAMES:
+        curves[f"loss_{key}"].append(round(means[key], 6))
+    curves["lambda"].append(round(lambda_, 6))
+    curves["learning_rate"].append(float(f"{lr:.6g}"))
+    curves["val_domain_accuracy"].append(round(val["domain_accuracy"], 6))
+    curves["val_relative_drift"].append(round(val["drift"], 6) if math.isfinite(val["drift"]) else None)
+    probes = val["probes"]
+    curves["val_clean_probe"].append(round(float(np.mean(list(probes.values()))), 6) if probes else None)
+
+
+def progress_line(curves: dict, steps: int) -> str:
+    """The last recorded row of ``curves`` as one line, every logged loss included.
+
+    Parameters
+    ----------
+    curves : dict of str to list
+        The run's curves (see :func:`train`).
+    steps : int
+        Steps the run was asked for.
+
+    Returns
+    -------
+    str
+    """
+    row = {k: v[-1] for k, v in curves.items()}
+    probe = "n/a" if row["val_clean_probe"] is None else f"{row['val_clean_probe']:.3f}"
+    drift = "n/a" if row["val_relative_drift"] is None else f"{row['val_relative_drift']:.3f}"
+    terms = ", ".join(f"{k} {row[f'loss_{k}']:.4f}" for k in LOSS_NAMES if k != "total")
+    return (f"align step {row['step']}/{steps}: discriminator acc {row['discriminator_accuracy']:.3f}, "
+            f"loss {row['loss_total']:.4f} ({terms}), lambda {row['lambda']:.3f}, "
+            f"val domain acc {row['val_domain_accuracy']:.3f}, val drift {drift}, val clean probe {probe}")
+
+
+def _snapshot(module: nn.Module) -> dict:
+    return {k: v.detach().clone() for k, v in module.state_dict().items()}
+
+
+class _Training:
+    """One pass of the DANN loop over ``options.steps`` steps, validated every EVAL_EVERY."""
+
+    def __init__(self, run: _Run, options, reporter, batch_callback):
+        self.run, self.options, self.reporter, self.batch_callback = run, options, reporter, batch_callback
+        self.weights = {"anchor": options.anchor_weight, "task": options.task_weight,
+                        "paired": options.paired_weight, "mean": options.mean_weight}
+        self.optimizer = torch.optim.Adam(run.parameters(), lr=options.learning_rate)
+        self.curves = _empty_curves()
+        self.kinds = {t["name"]: t["kind"] for t in run.tasks}
+        self.sums, self.count = {}, 0
+
+    def start(self) -> None:
+        """Row 0: the losses of the first batch untrained, and the slice as it starts."""
+        with torch.no_grad():
+            first = self.run.losses(self.run.train_pos[:self.options.batch_size], 0.0, self.weights)
+        val = self.run.validate()
+        self.probes0 = val["probes"]
+        self._log(0, {k: float(v) for k, v in first.items()}, 0.0, self.options.learning_rate, val)
+        self.best = {"state": _snapshot(self.run.tail), "drift": val["drift"], "step": 0}
+
+    def step(self, step: int) -> tuple[float, float]:
+        """One Adam step at ``step``; returns the schedules' (lambda, learning rate)."""
+        p = step / self.options.steps
+        lambda_, lr = dann_lambda(p), dann_learning_rate(p, self.options.learning_rate)
+        for group in self.optimizer.param_groups:
+            group["lr"] = lr
+        batch = self.run.next_batch(self.options.batch_size)
+        if self.batch_callback is not None:
+            self.batch_callback(batch)
+        parts = self.run.losses(batch, lambda_, self.weights)
+        self.optimizer.zero_grad(set_to_none=True)
+        parts["total"].backward()
+        self.optimizer.step()
+        for k, v in parts.items():
+            self.sums[k] = self.sums.get(k, 0.0) + float(v.detach())
+        self.count += 1
+        return lambda_, lr
+
+    def evaluate(self, step: int, lambda_: float, lr: float) -> str | None:
+        """Check the slice, keep the best state; returns why to stop, or None."""
+        val = self.run.validate()
+        self._log(step, {k: v / self.count for k, v in self.sums.items()}, lambda_, lr, val)
+        self.sums, self.count = {}, 0
+        failure = _guard_failure(self.probes0, val["probes"], self.options.guard_margin, self.kinds,
+                                 len(self.run.val_pos))
+        if failure is None and val["drift"] < self.best["drift"]:
+            self.best = {"state": _snapshot(self.run.tail), "drift": val["drift"], "step": step}
+        return failure
+
+    def _log(self, step, means, lambda_, lr, val) -> None:
+        _record(self.curves, step, means, lambda_, lr, val)
+        self.reporter.note(progress_line(self.curves, self.options.steps))
+
+
+def train(run: _Run, options, reporter, batch_callback=None) -> tuple[dict, dict]:
+    """The DANN loop with validation every EVAL_EVERY steps.
+
+    The schedules follow the steps, not the clock, so a run is reproducible whatever the
+    machine's speed; ``options.minutes`` only stops the loop early.
+
+    Parameters
+    ----------
+    run : _Run
+    options : invariance.options.AlignmentOptions
+    reporter : invariance.progress.Reporter
+        Receives one line per validation.
+    batch_callback : callable, optional
+        Called with the positions of every training batch.
+
+    Returns
+    -------
+    state : dict
+        The tail's state with the lowest validation drift (step 0 included).
+    info : dict
+        ``steps_run``, ``stopped_because``, ``curves``, ``best_step``, ``seconds``.
+    """
+    training = _Training(run, options, reporter, batch_callback)
+    run.tail.eval()
+    start_time = time.perf_counter()
+    deadline = None if options.minutes is None else start_time + 60.0 * options.minutes
+    step, stopped = 0, f"steps: ran all {options.steps} steps"
+    training.start()
+    try:
+        while step < options.steps:
+            if deadline is not None and time.perf_counter() >= deadline:
+                stopped = f"minutes: the {options.minutes} minute limit was reached"
+                break
+            lambda_, lr = training.step(step)
+            step += 1
+            if step % EVAL_EVERY == 0 or step == options.steps:
+                failure = training.evaluate(step, lambda_, lr)
+                if failure:
+                    stopped = failure
+                    break
+    except KeyboardInterrupt:
+        stopped = "interrupted"
+    info = {"steps_run": step, "stopped_because": stopped, "curves": training.curves,
+            "best_step": training.best["step"], "seconds": time.perf_counter() - start_time}
+    return training.best["state"], info
