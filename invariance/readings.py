@@ -31,6 +31,16 @@ DASH = "\u2013"
 SMALL_SAMPLE_WORDS = "small sample"
 SMALL_SAMPLE_NOTE = "Few pairs: the domain-classifier interval is wide; treat the rank as provisional."
 
+
+def small_sample_note(n_pairs: int) -> str:
+    """The result JSON's ``domain_classifier.note`` for ``n_pairs`` of 100 or fewer.
+
+    Rabanser, Guennemann & Lipton, NeurIPS 2019, section 3.2: domain classifiers do poorly
+    with 100 samples or fewer.
+    """
+    return (f"only {n_pairs} pairs: domain classifiers have little power with 100 or fewer samples "
+            f"(Rabanser et al., NeurIPS 2019), so a near-chance accuracy is weak evidence of invariance")
+
 CLOSE_TO_CHANCE = "close to chance"
 BELOW_CHANCE = "below chance (check the splits)"
 NO_INTERVAL = "no interval: chance not ruled out"

@@ -59,3 +59,34 @@ def test_unwritable_output_fails_before_any_work(tmp_path):
 def test_every_command_has_help(command):
     res = CliRunner().invoke(cli, [command, "--help"])
     assert res.exit_code == 0 and "Usage: " in res.output and len(res.output.splitlines()) > 5
+
+
+def test_align_help_prints_the_real_default_of_every_option():
+    from invariance.options import AlignmentOptions, ScoringOptions
+
+    text = " ".join(CliRunner().invoke(cli, ["align", "--help"], terminal_width=400).output.split())
+    defaults = AlignmentOptions()
+    for flag, value in [("--steps", defaults.steps), ("--held-out", defaults.held_out_fraction),
+                        ("--anchor-weight", defaults.anchor_weight), ("--paired-weight", defaults.paired_weight),
+                        ("--mean-weight", defaults.mean_weight), ("--task-weight", defaults.task_weight),
+                        ("--learning-rate", defaults.learning_rate), ("--guard-margin", defaults.guard_margin),
+                        ("--permutations", ScoringOptions().permutations)]:
+        after = text.split(flag, 1)[1].split(" --", 1)[0]
+        assert f"[default: {value}]" in after, (flag, after)
+    assert "the library's" not in text
+
+
+def test_score_help_says_what_data_may_be_and_lists_exit_codes():
+    text = " ".join(CliRunner().invoke(cli, ["score", "--help"], terminal_width=400).output.split())
+    assert "clean/ and cluttered/" in text and "manifest CSV" in text
+    assert "Exit codes: 0" in text and "3 a gate was not met" in text
+
+
+@pytest.mark.parametrize("args, flag", [
+    (["score", "--features", "a.npy", "b.npy", "--permutations", "0"], "--permutations"),
+    (["score", "--features", "a.npy", "b.npy", "--max-domain-accuracy", "nan"], "--max-domain-accuracy"),
+    (["align", "d", "--encoder", "x", "--out", "o.pt", "--held-out", "0.95"], "--held-out"),
+])
+def test_bad_option_values_are_usage_errors_naming_the_flag(tmp_path, args, flag):
+    res = CliRunner().invoke(cli, args)
+    assert res.exit_code == 2 and flag in res.output and "Traceback" not in res.output

@@ -18,6 +18,7 @@ from sklearn.preprocessing import StandardScaler
 from threadpoolctl import threadpool_limits
 
 from invariance.errors import InvarianceError
+from invariance.readings import small_sample_note
 
 # A small log-spaced grid of inverse regularisation strengths on standardised features.
 # Ganin et al. (JMLR 2016, section 3.2) pick the linear classifier's C over a range and
@@ -320,9 +321,5 @@ def _summarise(decision, y, folds, chosen):
     }
     if n_test // 2 <= SMALL_SAMPLE_PAIRS:
         out["small_sample"] = True
-        out["note"] = (
-            f"only {n_test // 2} pairs: domain classifiers have little power with 100 "
-            f"or fewer samples (Rabanser et al., NeurIPS 2019), so a near-chance "
-            f"accuracy is weak evidence of invariance"
-        )
+        out["note"] = small_sample_note(n_test // 2)
     return out
