@@ -6,6 +6,7 @@ import contextlib
 import json
 import os
 import shutil
+import stat
 import tempfile
 from pathlib import Path
 from typing import Iterator
@@ -40,13 +41,30 @@ def _umask() -> int:
     return mask
 
 
+def _is_special(path: Path) -> bool:
+    """A device node, FIFO or socket: written in place, never replaced by a regular file."""
+    try:
+        mode = os.stat(path).st_mode
+    except OSError:
+        return False
+    return stat.S_ISCHR(mode) or stat.S_ISBLK(mode) or stat.S_ISFIFO(mode) or stat.S_ISSOCK(mode)
+
+
 def atomic_write_bytes(path: str | os.PathLike, data: bytes) -> Path:
     """Write ``data`` to ``path`` through a temporary file in the same folder and a rename.
 
     The file gets the usual permissions for new files (0666 less the umask), not the
-    owner-only mode of temporary files.
+    owner-only mode of temporary files. A symbolic link is written through (the link stays
+    and its target gets the data); a device node or FIFO (``/dev/stdout``, ``/dev/null``)
+    is written in place, since renaming over it would replace it with a regular file.
     """
     path = Path(path)
+    if path.is_symlink():
+        path = path.resolve()
+    if _is_special(path):
+        with open(path, "wb") as fh:
+            fh.write(data)
+        return path
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
@@ -115,6 +133,12 @@ def check_writable(path: str | os.PathLike) -> Path:
     path = Path(path)
     if path.is_dir():
         raise InvarianceError(f"{path}: is a folder; pass a file name such as {path / 'report.html'}")
+    if _is_special(path):
+        if not os.access(path, os.W_OK):
+            raise InvarianceError(f"{path}: cannot write to it; choose another output path")
+        return path
+    if path.is_symlink():
+        path = path.resolve()
     folder = path.parent
     ancestor = folder
     while not ancestor.exists() and ancestor != ancestor.parent:
@@ -140,3 +164,36 @@ def _probe_write(folder: Path, path: Path) -> None:
         ) from None
     os.close(fd)
     os.unlink(probe)
+
+
+def check_distinct_outputs(outputs: dict, inputs=()) -> None:
+    """Refuse outputs that name the same file, or a file the run reads.
+
+    Parameters
+    ----------
+    outputs : dict of str to path or None
+        Output name (for the message: ``json_path``, ``out``) to its path; ``None`` skipped.
+    inputs : iterable of path
+        Files the run reads (labels, weights, features, result files, the encoder list).
+
+    Raises
+    ------
+    InvarianceError
+        Two outputs are one file, or an output is an input (it would be destroyed).
+    """
+    def key(p):
+        p = Path(p)
+        return p.resolve() if not _is_special(p) else None
+
+    seen = {}
+    for name, path in outputs.items():
+        if path is None or key(path) is None:
+            continue
+        if key(path) in seen:
+            raise InvarianceError(f"{path}: both {seen[key(path)]} and {name} would write this file; give each "
+                                  "output its own path")
+        seen[key(path)] = name
+    for path in inputs:
+        if path is not None and Path(path).exists() and key(path) in seen:
+            raise InvarianceError(f"{path}: is read by this run and would be overwritten by {seen[key(path)]}; "
+                                  "choose another output path")

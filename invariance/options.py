@@ -45,6 +45,9 @@ class ExtractionOptions:
         Feature cache folder; ``None`` neither reads nor writes a cache.
     skip_unpaired : bool, default=False
         Go on without images that have no partner in the other view.
+    trusted_code : tuple of str, default=()
+        ``python:`` specs a ``checkpoint:`` file may name as its source; a checkpoint that
+        names other code is refused rather than imported.
     """
 
     image_size: int | None = None
@@ -52,6 +55,7 @@ class ExtractionOptions:
     batch_size: int = 32
     cache_dir: Path | None = None
     skip_unpaired: bool = False
+    trusted_code: tuple[str, ...] = ()
 
     def __post_init__(self):
         object.__setattr__(self, "image_size", check_int("image_size", self.image_size, low=MIN_IMAGE_SIZE,
@@ -60,6 +64,11 @@ class ExtractionOptions:
         object.__setattr__(self, "batch_size", check_int("batch_size", self.batch_size, low=2, high=4096))
         object.__setattr__(self, "cache_dir", _as_path(self.cache_dir, "cache_dir"))
         check_bool("skip_unpaired", self.skip_unpaired)
+        trusted = (self.trusted_code,) if isinstance(self.trusted_code, str) else tuple(self.trusted_code)
+        if not all(isinstance(t, str) and t.startswith("python:") for t in trusted):
+            raise InvalidParameter("trusted_code", f"trusted_code={self.trusted_code!r} is not valid; pass python: "
+                                                   "specs such as 'python:my_pkg.nets:build'")
+        object.__setattr__(self, "trusted_code", trusted)
 
 
 @dataclass(frozen=True)

@@ -86,7 +86,8 @@ def _load(spec: str, weights, extraction: ExtractionOptions, image_size=None):
     from .encoders import load_encoder
 
     return load_encoder(spec, weights=weights, device=extraction.device,
-                        image_size=image_size if image_size is not None else extraction.image_size)
+                        image_size=image_size if image_size is not None else extraction.image_size,
+                        trusted_code=extraction.trusted_code)
 
 
 def score_dataset(data, spec: str, *, weights=None, layers: Sequence[str] | None = None, name: str | None = None,

@@ -321,18 +321,31 @@ def test_missing_and_unreadable_weights_files(tmp_path):
     assert "weights_only" not in str(err.value) and "\n" not in str(err.value)
 
 
+def _plant_hub_file(tmp_path, monkeypatch, payload, *, honest_name=True):
+    """Save ``payload`` where the loader looks for hub weights, named as torch.hub names
+    cached files: ``<name>-<first 8 hex digits of its SHA-256>.pth`` (torch.hub.HASH_REGEX)."""
+    from invariance.encoders import loaders
+
+    folder = tmp_path / "torch" / "hub" / "checkpoints"
+    folder.mkdir(parents=True, exist_ok=True)
+    staged = folder / "staged.pth"
+    torch.save(payload, staged)
+    prefix = hashlib.sha256(staged.read_bytes()).hexdigest()[:8] if honest_name else "f37072fd"
+    path = folder / f"resnet18-{prefix}.pth"
+    staged.rename(path)
+    monkeypatch.setattr(loaders, "_hub_file", lambda enum: path)
+    return path
+
+
 def test_hub_weights_load_only_from_local_cache(tmp_path, monkeypatch):
     monkeypatch.setenv("TORCH_HOME", str(tmp_path / "torch"))
     weights = torchvision.models.ResNet18_Weights.IMAGENET1K_V1
     with pytest.raises(InvarianceError, match="not in the local torch hub cache.*weights=FILE"):
         load_encoder("torchvision:resnet18@IMAGENET1K_V1", device="cpu")
-    # torch.hub's cache layout: <TORCH_HOME>/hub/checkpoints/<file name of the url>.
-    cached = tmp_path / "torch" / "hub" / "checkpoints" / weights.url.rsplit("/", 1)[-1]
-    cached.parent.mkdir(parents=True)
     with torch.random.fork_rng():
         torch.manual_seed(3)
         source = torchvision.models.resnet18()
-    torch.save(source.state_dict(), cached)
+    cached = _plant_hub_file(tmp_path, monkeypatch, source.state_dict())
     for spec in ("torchvision:resnet18@IMAGENET1K_V1", "torchvision:resnet18@ResNet18_Weights.IMAGENET1K_V1"):
         enc = load_encoder(spec, device="cpu")
         torch.testing.assert_close(enc.module.layer2[0].conv1.weight, source.layer2[0].conv1.weight)
@@ -340,6 +353,19 @@ def test_hub_weights_load_only_from_local_cache(tmp_path, monkeypatch):
         assert enc.weights_sha256 == hashlib.sha256(cached.read_bytes()).hexdigest()
     with pytest.raises(InvarianceError, match="no weights 'IMAGENET9K'.*@IMAGENET1K_V1"):
         load_encoder("torchvision:resnet18@IMAGENET9K", device="cpu")
+
+
+def test_planted_hub_file_is_refused_by_its_hash_before_it_is_read(tmp_path, monkeypatch):
+    # torch.hub checks a cached file's hash only when it downloads it; a file planted in the
+    # cache under the published name must fail the SHA-256 prefix its name carries, and its
+    # pickle must never run.
+    monkeypatch.setenv("TORCH_HOME", str(tmp_path / "torch"))
+    marker = tmp_path / "ran"
+    _plant_hub_file(tmp_path, monkeypatch, {"conv1.weight": torch.zeros(1), "x": _MakesFolder(marker)},
+                    honest_name=False)
+    with pytest.raises(InvarianceError, match="SHA-256 starts .* not f37072fd.*planted"):
+        load_encoder("torchvision:resnet18@IMAGENET1K_V1", device="cpu")
+    assert not marker.exists()
 
 
 # --------------------------------------------------------------------------- torchscript and python
@@ -556,11 +582,7 @@ class _MakesFolder:
 
 def _hub_file_with(tmp_path, monkeypatch, payload):
     monkeypatch.setenv("TORCH_HOME", str(tmp_path / "torch"))
-    url = torchvision.models.ResNet18_Weights.IMAGENET1K_V1.url
-    # torch.hub's cache layout: <TORCH_HOME>/hub/checkpoints/<file name of the url>.
-    path = tmp_path / "torch" / "hub" / "checkpoints" / url.rsplit("/", 1)[-1]
-    path.parent.mkdir(parents=True)
-    torch.save(payload, path)
+    _plant_hub_file(tmp_path, monkeypatch, payload)  # a name that matches: the content is what is refused
     return "torchvision:resnet18@IMAGENET1K_V1", {}
 
 
@@ -619,10 +641,37 @@ def test_checkpoint_round_trip(tmp_path, pairs, resnet18):
 def test_checkpoint_of_python_module(tmp_path, pairs, user_file):
     enc = load_encoder(f"python:{user_file}:conv_net", device="cpu")
     path = save_checkpoint(tmp_path / "conv.ckpt", encoder=enc, module=enc.module, metadata={})
-    back = load_encoder(f"checkpoint:{path}", device="cpu")
+    # the checkpoint names user code as its source: refused unless that code is trusted by name
+    with pytest.raises(InvarianceError, match=r"would import and run .*trusted_code=.*--trust-code"):
+        load_encoder(f"checkpoint:{path}", device="cpu")
+    back = load_encoder(f"checkpoint:{path}", device="cpu", trusted_code=[f"python:{user_file}:conv_net"])
     a = extract_features(pairs, enc, progress=False)["output"]
     b = extract_features(pairs, back, progress=False)["output"]
     np.testing.assert_array_equal(a[0], b[0])
+
+
+def test_checkpoint_naming_planted_code_never_runs_it(tmp_path, resnet18):
+    # A checkpoint whose stored source points at a file: the file must not be imported.
+    marker = tmp_path / "ran"
+    (tmp_path / "payload.py").write_text(f"open({str(marker)!r}, 'w').write('x')\ndef build():\n    pass\n")
+    path = save_checkpoint(tmp_path / "c.pt", encoder=resnet18, module=resnet18.module, metadata={})
+    ckpt = torch.load(path, weights_only=True)
+    ckpt["source_spec"] = f"python:{tmp_path / 'payload.py'}:build"
+    torch.save(ckpt, path)
+    with pytest.raises(InvarianceError, match="payload.py"):
+        load_encoder(f"checkpoint:{path}", device="cpu")
+    assert not marker.exists()
+
+
+@pytest.mark.parametrize("code", ["import sys\nsys.exit(0)\n", "import sys\ndef build():\n    sys.exit(0)\n"])
+def test_user_code_that_exits_is_an_error_not_an_exit(tmp_path, code):
+    # SystemExit from a builder or its module used to end the run with status 0 and no gate
+    (tmp_path / "exits.py").write_text(code + "def build2():\n    pass\n")
+    name = "build" if "def build()" in code else "build2"
+    with pytest.raises(InvarianceError, match="exits.py|build"):
+        load_encoder(f"python:{tmp_path / 'exits.py'}:{name}", device="cpu")
+    with pytest.raises(InvarianceError, match="exit"):
+        load_encoder("python:sys:exit", device="cpu")
 
 
 def test_checkpoint_errors(tmp_path, resnet18):

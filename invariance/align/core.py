@@ -173,7 +173,9 @@ def _reload(out: Path, encoder):
     """The saved checkpoint as an encoder, so "after" measures exactly what was written."""
     from ..encoders import load_encoder
 
-    return load_encoder(f"checkpoint:{out}", device=str(encoder.device))
+    # the checkpoint's source is the encoder the caller handed over, so its code is trusted
+    return load_encoder(f"checkpoint:{out}", device=str(encoder.device),
+                        trusted_code=(encoder.source.get("spec", encoder.spec),))
 
 
 def _held_out_metrics(pairs, encoder, scoring: ScoringOptions, extraction: ExtractionOptions) -> dict:

@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-import click
 
 from .. import SAFETY_CAUTION
+from ._shared import say
 
 
 def print_summary(result) -> None:
@@ -13,15 +13,15 @@ def print_summary(result) -> None:
 
     rows = describe_metrics(result["metrics"])
     enc = result.get("encoder", {})
-    click.echo(f"{enc.get('name') or enc.get('spec')}  layer={enc.get('layer')}  pairs={result['dataset']['pairs']}")
+    say(f"{enc.get('name') or enc.get('spec')}  layer={enc.get('layer')}  pairs={result['dataset']['pairs']}")
     header = ("metric", "value", "95% interval", "reading")
     widths = [max(len(str(r[i])) for r in [header, *rows]) for i in range(3)]
     for row in [header, *rows]:
-        click.echo("  ".join(str(c).ljust(w) for c, w in zip(row[:3], widths)) + "  " + str(row[3]))
+        say("  ".join(str(c).ljust(w) for c, w in zip(row[:3], widths)) + "  " + str(row[3]))
     print_breakdowns(result.get("breakdowns") or {})
     for warning in result.get("warnings", []):
-        click.echo(f"warning: {warning}")
-    click.echo(f"note: {SAFETY_CAUTION}")
+        say(f"warning: {warning}")
+    say(f"note: {SAFETY_CAUTION}")
 
 
 def print_breakdowns(breakdowns) -> None:
@@ -35,7 +35,7 @@ def print_breakdowns(breakdowns) -> None:
             acc = _fmt(metric_value(m, "domain_classifier", "accuracy"), 2)
             drift = _fmt(metric_value(m, "paired_drift", "relative_drift"), 2)
             cells.append(f"{value}: acc {acc}, drift {drift} (n={group.get('pairs')})")
-        click.echo(f"by {column}: " + "; ".join(cells))
+        say(f"by {column}: " + "; ".join(cells))
 
 
 def print_ranking(comparison) -> None:
@@ -53,12 +53,12 @@ def print_ranking(comparison) -> None:
                      _fmt(metric_value(m, "paired_drift", "relative_drift")), _fmt(metric_value(m, "cka"))))
     widths = [max(len(r[c]) for r in rows) for c in range(len(rows[0]))]
     for row in rows:
-        click.echo("  ".join(cell.ljust(w) for cell, w in zip(row, widths)).rstrip())
+        say("  ".join(cell.ljust(w) for cell, w in zip(row, widths)).rstrip())
     for failure in comparison.get("failures", []):
-        click.echo(f"failed: {failure['name']}: {failure['error']}")
+        say(f"failed: {failure['name']}: {failure['error']}")
     for warning in comparison.get("warnings", []):
-        click.echo(f"warning: {warning}")
-    click.echo(f"note: {SAFETY_CAUTION}")
+        say(f"warning: {warning}")
+    say(f"note: {SAFETY_CAUTION}")
 
 
 def print_alignment(result) -> None:
@@ -66,20 +66,20 @@ def print_alignment(result) -> None:
     from ..results import metric_value
 
     al = result["alignment"]
-    click.echo(f"aligned checkpoint: {al['checkpoint']} (load it as checkpoint:{al['checkpoint']})")
-    click.echo(f"stopped: {al.get('stopped_because', 'step limit')}; kept the state of step {al.get('best_step', '?')} "
+    say(f"aligned checkpoint: {al['checkpoint']} (load it as checkpoint:{al['checkpoint']})")
+    say(f"stopped: {al.get('stopped_because', 'step limit')}; kept the state of step {al.get('best_step', '?')} "
                f"(step 0 = the original encoder); measured on {al['held_out_pairs']} held-out pairs")
     rows = [("domain accuracy", "domain_classifier", "accuracy"), ("relative drift", "paired_drift", "relative_drift"),
             ("CKA", "cka", None)]
     for label, group, key in rows:
         before, after = metric_value(al["before"], group, key), metric_value(al["after"], group, key)
-        click.echo(f"  {label:<16} before {_fmt(before)}  after {_fmt(after)}")
+        say(f"  {label:<16} before {_fmt(before)}  after {_fmt(after)}")
     for name, probe in al["after"].get("probe", {}).items():
         b = al["before"].get("probe", {}).get(name, {})
         if "clean" in probe and "clean" in b:
-            click.echo(f"  probe {name:<10} clean {b['clean']:.3f} -> {probe['clean']:.3f}   "
+            say(f"  probe {name:<10} clean {b['clean']:.3f} -> {probe['clean']:.3f}   "
                        f"cluttered {b['cluttered']:.3f} -> {probe['cluttered']:.3f}")
-    click.echo(f"note: {SAFETY_CAUTION}")
+    say(f"note: {SAFETY_CAUTION}")
 
 
 def _fmt(value, digits: int = 3) -> str:

@@ -9,6 +9,7 @@ The option groups turn click options into the frozen objects of
 from __future__ import annotations
 
 import functools
+import re
 import sys
 from dataclasses import fields
 from pathlib import Path
@@ -31,7 +32,23 @@ EXIT_CODES_HELP = (
 
 # Library parameter -> command-line flag, where the flag is not the parameter's name with
 # dashes (the library names parameters, the command line names flags).
-_FLAGS = {"held_out_fraction": "--held-out", "spec": "--encoder", "cache_dir": "--cache-dir"}
+_FLAGS = {"held_out_fraction": "--held-out", "spec": "--encoder", "cache_dir": "--cache-dir",
+          "trusted_code": "--trust-code"}
+
+
+# C0 and C1 control characters except tab and newline: in a file name they could move the
+# cursor, rewrite the screen or set the window title of the user's terminal (ECMA-48).
+_CONTROL = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f]")
+
+
+def printable(text) -> str:
+    """``text`` with control characters shown as ``\\xNN`` instead of sent to the terminal."""
+    return _CONTROL.sub(lambda m: f"\\x{ord(m.group()):02x}", str(text))
+
+
+def say(message="", *, err: bool = False) -> None:
+    """``click.echo`` of a printable line: every line the commands print goes through here."""
+    click.echo(printable(message), err=err)
 
 
 def flag_for(parameter: str) -> str:
@@ -42,7 +59,7 @@ def flag_for(parameter: str) -> str:
 def usage_error(exc: InvalidParameter) -> click.UsageError:
     """A click usage error (exit 2) that names the flag instead of the parameter."""
     flag = flag_for(exc.parameter)
-    return click.UsageError(str(exc).replace(f"{exc.parameter}=", f"{flag} ", 1))
+    return click.UsageError(printable(str(exc).replace(f"{exc.parameter}=", f"{flag} ", 1)))
 
 
 def handle_errors(func):
@@ -55,10 +72,10 @@ def handle_errors(func):
         except InvalidParameter as exc:
             raise usage_error(exc) from None
         except InvarianceError as exc:
-            click.echo(f"error: {exc}", err=True)
+            say(f"error: {exc}", err=True)
             sys.exit(exc.exit_code)
         except KeyboardInterrupt:
-            click.echo("interrupted; nothing was written half-way", err=True)
+            say("interrupted; nothing was written half-way", err=True)
             sys.exit(130)
 
     return wrapper
@@ -97,6 +114,12 @@ def _build_extraction(values) -> ExtractionOptions:
     return ExtractionOptions(**{**values, "cache_dir": cache_dir})
 
 
+trust_code_option = click.option(
+    "--trust-code", "trusted_code", multiple=True, metavar="python:SPEC",
+    help="Code a checkpoint: file may import as its source (repeat for several). A checkpoint made "
+         "from python: code is refused unless that exact spec is named here.")
+
+
 def extraction_options(func):
     """--image-size, --device, --batch-size, --cache-dir, --no-cache, --skip-unpaired."""
     d = ExtractionOptions()
@@ -114,6 +137,7 @@ def extraction_options(func):
         ("no_cache", click.option("--no-cache", is_flag=True, help="Neither read nor write the feature cache.")),
         ("skip_unpaired", click.option("--skip-unpaired", is_flag=True,
                                        help="Go on without images that have no partner.")),
+        ("trusted_code", trust_code_option),
     ]
     return _option_group("extraction", options, _build_extraction)(func)
 
@@ -202,11 +226,28 @@ def weights_option(func):
                         help="Local state_dict for a torchvision: spec.")(func)
 
 
-def check_output_paths(*paths):
-    """Fail before any work when an output file cannot be written (a real test write)."""
-    from .._io import check_writable
+def check_outputs(outputs: dict, *, data=None, specs=(), files=()):
+    """Fail before any work when an output cannot be written, when two outputs are one
+    file, or when an output would overwrite something the run reads.
 
-    for path in paths:
+    ``outputs`` maps each output's flag to its path; ``data`` is the data set (its
+    labels.csv, or the manifest itself, is an input), ``specs`` the encoder specs (their
+    files are inputs) and ``files`` any other file read.
+    """
+    from .._io import check_distinct_outputs, check_writable
+
+    inputs = [Path(f) for f in files if f is not None]
+    if data is not None:
+        data = Path(data)
+        inputs += [data / "labels.csv"] if data.is_dir() else [data]
+    for spec in specs:
+        kind, _, rest = str(spec).partition(":")
+        if kind in ("checkpoint", "torchscript"):
+            inputs.append(Path(rest))
+        elif kind == "python" and rest.rpartition(":")[0].endswith(".py"):
+            inputs.append(Path(rest.rpartition(":")[0]))
+    check_distinct_outputs(outputs, inputs)
+    for path in outputs.values():
         if path is not None:
             check_writable(path)
 
@@ -217,15 +258,22 @@ def write_result_outputs(result, *, json_path=None, report_path=None, drift_csv=
 
     if json_path:
         atomic_write_json(json_path, result)
-        click.echo(f"result JSON: {json_path}")
+        say(f"result JSON: {json_path}")
     if drift_csv:
         atomic_write_text(drift_csv, drift_table(result.get("pairs", [])))
-        click.echo(f"per-pair drift: {drift_csv}")
+        say(f"per-pair drift: {drift_csv}")
     if report_path:
         from ..report import write_report
 
         write_report(report_path, [result], tsne=tsne)
-        click.echo(f"report: {report_path}")
+        say(f"report: {report_path}")
+
+
+def _inert_cell(text: str) -> str:
+    """A text cell a spreadsheet shows as text: one starting with = + - @ or a tab/CR would
+    be read as a formula, so it gets a leading apostrophe (OWASP, "CSV Injection")."""
+    text = str(text)
+    return "'" + text if text[:1] in ("=", "+", "-", "@", "\t", "\r") else text
 
 
 def drift_table(pairs) -> str:
@@ -236,5 +284,5 @@ def drift_table(pairs) -> str:
     out = io.StringIO()
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(["file", "relative_drift"])
-    writer.writerows([p["name"], "" if p["drift"] is None else f"{p['drift']:.6f}"] for p in pairs)
+    writer.writerows([_inert_cell(p["name"]), "" if p["drift"] is None else f"{p['drift']:.6f}"] for p in pairs)
     return out.getvalue()

@@ -9,9 +9,9 @@ from pathlib import Path
 import click
 
 from ._print import print_alignment
-from ._shared import (EXIT_CODES_HELP, alignment_options, check_output_paths, encoder_option, extraction_options,
+from ._shared import (EXIT_CODES_HELP, alignment_options, check_outputs, encoder_option, extraction_options,
                       handle_errors, json_option, quiet_option, report_option, scoring_options, weights_option,
-                      write_result_outputs)
+                      say, write_result_outputs)
 
 
 @click.command(epilog=EXIT_CODES_HELP)
@@ -41,14 +41,15 @@ def align(data, spec, weights, out_path, alignment, json_path, report_path, scor
 
     if spec is None:
         raise click.UsageError("give --encoder SPEC")
-    check_output_paths(out_path, json_path, report_path)
+    check_outputs({"--out": out_path, "--json": json_path, "--report": report_path}, data=data, specs=[spec],
+                  files=[weights])
     # --batch-size is both the training batch (pairs per step) and the forward-pass batch, as before
     alignment = replace(alignment, batch_size=extraction.batch_size)
     try:
         result = pipeline.align_dataset(data, spec, out=out_path, weights=weights, alignment=alignment,
                                         scoring=scoring, extraction=extraction, progress=not quiet)
     except AlignmentInterrupted as exc:
-        click.echo(f"{exc} (load it as checkpoint:{exc.checkpoint})", err=True)
+        say(f"{exc} (load it as checkpoint:{exc.checkpoint})", err=True)
         sys.exit(130)
     write_result_outputs(result, json_path=json_path, report_path=report_path)
     print_alignment(result)

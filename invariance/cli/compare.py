@@ -7,8 +7,8 @@ from pathlib import Path
 import click
 
 from ._print import print_ranking
-from ._shared import (ENCODER_HELP, EXIT_CODES_HELP, check_output_paths, extraction_options, handle_errors,
-                      quiet_option, report_option, scoring_options)
+from ._shared import (ENCODER_HELP, EXIT_CODES_HELP, check_outputs, extraction_options, handle_errors,
+                      quiet_option, report_option, say, scoring_options)
 
 
 @click.command(epilog=EXIT_CODES_HELP)
@@ -39,15 +39,16 @@ def compare(data, specs, encoders_toml, layers, json_path, report_path, scoring,
         entries += read_encoder_list(encoders_toml)
     if not entries:
         raise click.UsageError("give at least one --encoder SPEC or --encoders FILE.toml")
-    check_output_paths(json_path, report_path)
+    check_outputs({"--json": json_path, "--report": report_path}, data=data, specs=[e.spec for e in entries],
+                  files=[encoders_toml, *(e.weights for e in entries)])
     comparison = pipeline.compare_encoders(data, entries, extraction=extraction, scoring=scoring, progress=not quiet)
     if json_path:
         atomic_write_json(json_path, comparison)
-        click.echo(f"comparison JSON: {json_path}")
+        say(f"comparison JSON: {json_path}")
     if report_path:
         from ..report import write_report
 
         write_report(report_path, comparison["results"], failures=comparison["failures"],
                      warnings=comparison["warnings"], tsne=scoring.tsne)
-        click.echo(f"report: {report_path}")
+        say(f"report: {report_path}")
     print_ranking(comparison)

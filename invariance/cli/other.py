@@ -6,7 +6,8 @@ from pathlib import Path
 
 import click
 
-from ._shared import ENCODER_HELP, check_output_paths, handle_errors, quiet_option, weights_option
+from ._shared import (ENCODER_HELP, check_outputs, handle_errors, quiet_option, say, trust_code_option,
+                      weights_option)
 
 
 @click.command()
@@ -35,7 +36,7 @@ def scenes(out_dir, pairs, size, seed, factors, level, quiet):
     with as_reporter(not quiet).bar(pairs, "scenes") as bar:
         out = generate_scenes(out_dir, pairs=pairs, size=size, seed=seed, factors=factor_tuple, level=level,
                               progress=lambda n=1: bar.update(1))
-    click.echo(f"wrote {pairs} pairs to {out} (clean/, cluttered/, labels.csv)")
+    say(f"wrote {pairs} pairs to {out} (clean/, cluttered/, labels.csv)")
 
 
 @click.command()
@@ -44,8 +45,9 @@ def scenes(out_dir, pairs, size, seed, factors, level, quiet):
 @click.option("--device", type=click.Choice(["auto", "cpu", "cuda"]), default="cpu", show_default=True,
               help="Where the encoder is built.")
 @click.option("--image-size", type=int, default=None, help="Input size the encoder will be run at (16-2048).")
+@trust_code_option
 @handle_errors
-def layers(spec, weights, device, image_size):
+def layers(spec, weights, device, image_size, trusted_code):
     """List the graph nodes an encoder can be tapped at (for --layer).
 
     Block names (layer3) work as well as inner nodes; the input node taps raw pixels as a
@@ -54,10 +56,11 @@ def layers(spec, weights, device, image_size):
     from ..encoders import available_layers, load_encoder
     from ..options import ExtractionOptions
 
-    options = ExtractionOptions(image_size=image_size, device=device)  # validates both
-    encoder = load_encoder(spec, weights=weights, device=options.device, image_size=options.image_size)
+    options = ExtractionOptions(image_size=image_size, device=device, trusted_code=trusted_code)  # validates
+    encoder = load_encoder(spec, weights=weights, device=options.device, image_size=options.image_size,
+                           trusted_code=options.trusted_code)
     for node in available_layers(encoder):
-        click.echo(node)
+        say(node)
 
 
 @click.command()
@@ -74,11 +77,11 @@ def report(results, out_path, title, tsne, image_root):
     from ..report import write_report
     from ..results import load_as_comparison
 
-    check_output_paths(out_path)
+    check_outputs({"--out": out_path}, files=results)
     comparison = load_as_comparison(results)
     write_report(out_path, comparison["results"], failures=comparison["failures"],
                  warnings=comparison["warnings"], title=title, tsne=tsne, image_root_overrides=image_root)
-    click.echo(f"report: {out_path}")
+    say(f"report: {out_path}")
 
 
 @click.command()
@@ -91,7 +94,7 @@ def demo(out_dir, quiet):
     from ..demo import run_demo
 
     for line in run_demo(out_dir, progress=not quiet):
-        click.echo(line)
+        say(line)
 
 
 @click.command()
@@ -106,8 +109,8 @@ def bench(pairs, spec, json_path, quick):
     from .._io import atomic_write_json
     from ..bench import run_bench
 
-    check_output_paths(json_path)
-    figures = run_bench(spec=spec, pairs=pairs, quick=quick, echo=lambda m: click.echo(m))
+    check_outputs({"--json": json_path})
+    figures = run_bench(spec=spec, pairs=pairs, quick=quick, echo=lambda m: say(m))
     if json_path:
         atomic_write_json(json_path, figures)
-        click.echo(f"figures JSON: {json_path}")
+        say(f"figures JSON: {json_path}")

@@ -7,7 +7,7 @@ from pathlib import Path
 import click
 
 from ._print import print_summary
-from ._shared import (EXIT_CODES_HELP, check_output_paths, encoder_option, extraction_options, gate_options,
+from ._shared import (EXIT_CODES_HELP, check_outputs, encoder_option, extraction_options, gate_options,
                       handle_errors, json_option, quiet_option, report_option, scoring_options, weights_option,
                       write_result_outputs)
 
@@ -51,7 +51,8 @@ def score(data, spec, weights, layers, features, labels_csv, json_path, report_p
         raise click.UsageError("give DATA and --encoder SPEC, or --features CLEAN.npy CLUTTERED.npy")
     if features is not None and (data is not None or spec is not None):
         raise click.UsageError("--features replaces DATA and --encoder; give one or the other")
-    check_output_paths(json_path, report_path, drift_csv)
+    check_outputs({"--json": json_path, "--report": report_path, "--drift-csv": drift_csv}, data=data, specs=[spec or ""],
+                  files=[weights, labels_csv, *(features or ())])
     if features is not None:
         result = _score_feature_files(features, labels_csv, scoring)
     else:

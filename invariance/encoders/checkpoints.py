@@ -8,6 +8,7 @@ A checkpoint is a ``torch.save``'d dict that ``torch.load(weights_only=True)`` r
 from __future__ import annotations
 
 import io
+import re
 from pathlib import Path
 
 import torch
@@ -63,12 +64,17 @@ def save_checkpoint(path, *, encoder: Encoder, module: torch.nn.Module, metadata
     return atomic_write_bytes(path, buf.getvalue())
 
 
-def _load_checkpoint(spec: str, rest: str, weights) -> Encoder:
-    """``checkpoint:FILE``: rebuild the source architecture, then load every weight."""
+def _load_checkpoint(spec: str, rest: str, weights, trusted_code=()) -> Encoder:
+    """``checkpoint:FILE``: rebuild the source architecture, then load every weight.
+
+    A ``python:`` source is code named inside the file: it is imported only when the
+    caller lists that exact spec in ``trusted_code``.
+    """
     path = _existing_file(rest, spec)
     ckpt = _torch_load(path, "checkpoint", _WRITE_IT)
     if not isinstance(ckpt, dict) or ckpt.get("format") != CHECKPOINT_FORMAT:
         raise InvarianceError(f"{path} is not an invariance checkpoint ({CHECKPOINT_FORMAT}); {_WRITE_IT}")
+    _check_trusted(path, ckpt.get("source_spec"), trusted_code)
     base = _rebuild_source(path, ckpt)
     if base.arch != ckpt.get("arch"):
         raise InvarianceError(
@@ -80,6 +86,22 @@ def _load_checkpoint(spec: str, rest: str, weights) -> Encoder:
         spec=spec, module=base.module.eval(), preprocess=Preprocess(**ckpt["preprocess"]),
         weights_sha256=_file_sha256(path), arch=base.arch, device=torch.device("cpu"), weights=str(path),
         kind="checkpoint", layout=base.layout, source=dict(base.source), code_sha256=base.code_sha256,
+    )
+
+
+# The package's own modules (the demo encoders) are not foreign code.
+_OWN_MODULES = re.compile(r"^python:invariance(\.[A-Za-z_][A-Za-z0-9_]*)+:[A-Za-z_][A-Za-z0-9_]*$")
+
+
+def _check_trusted(path: Path, source, trusted_code) -> None:
+    if not isinstance(source, str) or not source.startswith("python:") or source in trusted_code:
+        return
+    if _OWN_MODULES.match(source):
+        return
+    target = source[len("python:"):].rpartition(":")[0]
+    raise InvarianceError(
+        f"checkpoint {path} was made from {source}: loading it would import and run {target}, code named inside "
+        f"the file; only if you trust that code, pass trusted_code=[{source!r}] (--trust-code {source})"
     )
 
 

@@ -171,6 +171,11 @@ def _forward(run, encoder: Encoder, batch: torch.Tensor, layers: list[str], name
             f"encoder {encoder.spec} failed on {size} px inputs{_on_images(names)} ({_first_line(exc)}); "
             f"if the images are too small for this network pass a larger image_size (e.g. image_size=224)"
         ) from None
+    except (Exception, SystemExit) as exc:  # noqa: BLE001 - user code may raise anything, exit too
+        raise InvarianceError(
+            f"encoder {encoder.spec} raised {type(exc).__name__} in its forward pass{_on_images(names)} "
+            f"({_first_line(exc)}); fix the model's code"
+        ) from None
     feats = {}
     for layer in layers:
         value = _pool(raw[layer], encoder.layout, layer, encoder.spec, names).float()

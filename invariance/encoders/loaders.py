@@ -14,6 +14,7 @@ import importlib
 import importlib.util
 import json
 import os
+import re
 import sys
 import warnings
 from pathlib import Path
@@ -145,7 +146,18 @@ def _hub_file(enum) -> Path:
     return Path(torch.hub.get_dir()) / "checkpoints" / os.path.basename(urlparse(enum.url).path)
 
 
+# torch.hub names cached weights "<name>-<first hex digits of the file's SHA-256>.<ext>"
+# (torch.hub.HASH_REGEX); torchvision's files all follow it.
+_HASH_IN_NAME = re.compile(r"-([a-f0-9]{8,})\.")
+
+
 def _from_hub(spec: str, arch: str, enum) -> torch.nn.Module:
+    """The architecture built without weights, then the cached file's tensors loaded into it.
+
+    torch.hub would unpickle the cached file without restriction and checks its hash only on
+    download; here the hash prefix its name carries is checked first, then the file is read
+    with ``weights_only=True``.
+    """
     path = _hub_file(enum)
     if not path.is_file():
         raise InvarianceError(
@@ -153,17 +165,39 @@ def _from_hub(spec: str, arch: str, enum) -> torch.nn.Module:
             f"invariance never downloads; copy the file there, or pass a local state dict with "
             f"load_encoder('torchvision:{arch}', weights=FILE)"
         )
-    # torch.hub unpickles its cache files without restriction; reading the file once with
-    # weights_only=True first means it can only hold tensors when torchvision reads it.
-    _torch_load(path, "torch hub weights file", "delete the file or pass weights=FILE")
-    # The file is cached, so torchvision's builder reads it without any network access and
-    # applies its own per-weights settings (e.g. image size, input transform).
-    try:
-        return _seeded(lambda: torchvision.models.get_model(arch, weights=enum, progress=False))
-    except Exception as exc:  # noqa: BLE001 - any read failure is a bad cache file
+    _check_hash_prefix(path)
+    state = _torch_load(path, "torch hub weights file", "delete the file or pass weights=FILE")
+    model = _seeded(lambda: torchvision.models.get_model(arch, weights=None, **_builder_kwargs(arch, enum)))
+    _load_state(model, _as_state_dict(state, path), source=str(path), target=spec)
+    return model
+
+
+def _check_hash_prefix(path: Path) -> None:
+    match = _HASH_IN_NAME.search(path.name)
+    if match is None:
+        raise InvarianceError(f"{path}: its name carries no SHA-256 prefix to check it against; delete it, or "
+                              "pass the file as weights=FILE if you trust it")
+    digest = _file_sha256(path)
+    if not digest.startswith(match.group(1)):
         raise InvarianceError(
-            f"cannot load {path} for {spec} ({_first_line(exc)}); delete the file or pass weights=FILE"
-        ) from None
+            f"{path}: its SHA-256 starts {digest[:len(match.group(1))]}, not {match.group(1)} as its name says; the "
+            "file was changed or planted: delete it and copy the published file again"
+        )
+
+
+def _builder_kwargs(arch: str, enum) -> dict:
+    """What torchvision's builder would set from the weights' metadata: class count, input size."""
+    meta = enum.meta
+    kwargs = {"num_classes": len(meta["categories"])} if meta.get("categories") else {}
+    if arch.startswith("vit_") and "min_size" in meta:
+        kwargs["image_size"] = meta["min_size"][0]
+    return kwargs
+
+
+def _as_state_dict(state, path: Path) -> dict:
+    if not isinstance(state, dict) or not all(isinstance(v, torch.Tensor) for v in state.values()):
+        raise InvarianceError(f"{path}: not a state dict of tensors; delete it and copy the published file again")
+    return state
 
 
 # --------------------------------------------------------------------------- torchscript
@@ -211,7 +245,7 @@ def _load_python(spec: str, rest: str, weights) -> Encoder:
         raise InvarianceError(f"encoder spec {spec!r}: {target} has no callable {name!r}; check the name")
     try:
         model = _seeded(fn)
-    except Exception as exc:  # noqa: BLE001 - the user's code may raise anything
+    except (Exception, SystemExit) as exc:  # noqa: BLE001 - the user's code may raise anything, exit too
         raise InvarianceError(f"encoder spec {spec!r}: {name}() raised {_described(exc)}") from None
     if not isinstance(model, torch.nn.Module):
         raise InvarianceError(
@@ -235,7 +269,7 @@ def _import_target(spec: str, target: str):
         # PYTHONPATH. Only for this import, so the library never sees the folder otherwise.
         with _on_import_path(Path.cwd()):
             module = importlib.import_module(target)
-    except Exception as exc:  # noqa: BLE001 - the user's code may raise anything
+    except (Exception, SystemExit) as exc:  # noqa: BLE001 - the user's code may raise anything, exit too
         raise InvarianceError(
             f"cannot import module {target!r} for {spec} ({_described(exc)}); "
             "run from the folder that holds it, install it, add its folder to PYTHONPATH or give a file path"
@@ -255,7 +289,7 @@ def _import_file(spec: str, target: str):
     try:
         with _on_import_path(path.parent):
             loader_spec.loader.exec_module(module)
-    except Exception as exc:  # noqa: BLE001 - the user's code may raise anything
+    except (Exception, SystemExit) as exc:  # noqa: BLE001 - the user's code may raise anything, exit too
         sys.modules.pop(mod_name, None)
         raise InvarianceError(
             f"cannot import {path} for {spec} ({_described(exc)}); fix the file"

@@ -29,6 +29,7 @@ def load_encoder(
     weights: str | os.PathLike | None = None,
     device: str = "auto",
     image_size: int | None = None,
+    trusted_code=(),
 ) -> Encoder:
     """Load the encoder named by ``spec`` in eval mode on ``device``.
 
@@ -42,6 +43,9 @@ def load_encoder(
     image_size : int, optional
         Resize the shorter side to ``image_size`` and centre-crop an ``image_size`` square
         (no crop margin on square images); overrides the weights' own preprocessing.
+    trusted_code : sequence of str, default=()
+        ``python:`` specs that a ``checkpoint:`` file may name as its source and that may
+        therefore be imported; a checkpoint naming any other code is refused.
 
     Returns
     -------
@@ -58,7 +62,13 @@ def load_encoder(
     if weights is not None and kind != "torchvision":
         raise InvalidParameter("weights", f"weights={weights} only applies to torchvision:NAME specs, not {spec}")
     dev = resolve_device(device)
-    enc = _LOADERS[kind](spec, rest, weights)
+    if isinstance(trusted_code, str) or not all(isinstance(t, str) for t in trusted_code):
+        raise InvalidParameter("trusted_code", f"trusted_code={trusted_code!r} is not valid; pass a list of "
+                                               "python: specs")
+    if kind == "checkpoint":
+        enc = _load_checkpoint(spec, rest, weights, trusted_code=tuple(trusted_code))
+    else:
+        enc = _LOADERS[kind](spec, rest, weights)
     if image_size is not None:
         enc.preprocess = dataclasses.replace(enc.preprocess, resize=image_size, crop=image_size)
     _check_input_size(enc)
