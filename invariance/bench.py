@@ -80,19 +80,55 @@ def bench_extraction(pairs, spec: str = "torchvision:resnet18", *, image_size: i
             "extract_over_bare": cold_s / bare_s, "warm_cache_s": warm_s, "warm_cache_speedup": cold_s / warm_s}
 
 
-def bench_statistics(n_pairs: int = 2000, dim: int = 512, permutations: int = 1000) -> dict:
-    """The whole statistics stage (all metrics) on synthetic paired features."""
-    from .options import ScoringOptions
-    from .scoring import score_features
+# Breakdown columns of the statistics benchmark: four clutter factors of three levels each,
+# as in the generated sample scenes (surface, distractors, lighting, level).
+STAT_FACTORS = 4
+STAT_LEVELS = 3
 
-    rng = np.random.default_rng(0)
+
+def _stat_features(n_pairs: int, dim: int, factors: int = STAT_FACTORS, levels: int = STAT_LEVELS, seed: int = 0):
+    """Synthetic float32 pairs (scene + noise, clutter adds a small shift), one task and
+    ``factors`` seeded factor columns of ``levels`` values each."""
+    rng = np.random.default_rng(seed)
     scene = rng.normal(size=(n_pairs, dim)).astype(np.float32)
     clean = scene + 0.5 * rng.normal(size=scene.shape).astype(np.float32)
     cluttered = scene + 0.5 * rng.normal(size=scene.shape).astype(np.float32) + 0.1
     tasks = {"part": np.array(["bolt", "nut", "gear", "washer"])[np.arange(n_pairs) % 4]}
-    factors = {"level": (1 + np.arange(n_pairs) % 3).astype(str)}
-    seconds, _ = _timed(lambda: score_features(clean, cluttered, tasks=tasks, factors=factors, options=ScoringOptions(permutations=permutations, seed=0)))
-    return {"pairs": n_pairs, "dim": dim, "permutations": permutations, "seconds": seconds}
+    columns = {f"factor_{k}": (1 + rng.integers(0, levels, n_pairs)).astype(str) for k in range(factors)}
+    return clean, cluttered, tasks, columns
+
+
+def bench_statistics(n_pairs: int = 2000, dim: int = 512, permutations: int = 1000, *,
+                     factors: int = STAT_FACTORS, levels: int = STAT_LEVELS,
+                     extract_images_per_s: float | None = None, compare_workers: bool = False) -> dict:
+    """The whole statistics stage (all metrics, breakdowns by ``factors`` x ``levels``) on
+    synthetic paired features.
+
+    With ``extract_images_per_s`` (measured in the same run) the figures add the seconds
+    extracting these pairs would take and ``share_of_extraction``. With ``compare_workers``
+    the same call also runs its subgroups on a thread pool (one worker per core), for the
+    ratio in this run.
+    """
+    from . import scoring
+    from .options import ScoringOptions
+
+    clean, cluttered, tasks, columns = _stat_features(n_pairs, dim, factors, levels)
+    options = ScoringOptions(permutations=permutations, seed=0)
+    seconds, _ = _timed(lambda: scoring.score_features(clean, cluttered, tasks=tasks, factors=columns, options=options))
+    out = {"pairs": n_pairs, "dim": dim, "permutations": permutations, "factors": factors, "levels": levels,
+           "seconds": seconds}
+    if compare_workers:
+        default, scoring._WORKERS = scoring._WORKERS, None
+        try:
+            out["thread_pool_seconds"], _ = _timed(
+                lambda: scoring.score_features(clean, cluttered, tasks=tasks, factors=columns, options=options))
+        finally:
+            scoring._WORKERS = default
+        out["thread_pool_speedup"] = seconds / out["thread_pool_seconds"]
+    if extract_images_per_s:
+        out["extract_s"] = 2 * n_pairs / extract_images_per_s
+        out["share_of_extraction"] = seconds / out["extract_s"]
+    return out
 
 
 _STATS_MEMORY_CHILD = """

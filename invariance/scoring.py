@@ -15,6 +15,7 @@ import numpy as np
 from sklearn.decomposition import PCA
 from threadpoolctl import threadpool_limits
 
+from invariance import breakdowns as _bd
 from invariance.errors import InvalidParameter, InvarianceError
 from invariance.options import ScoringOptions
 from invariance.metrics import cka as _cka
@@ -31,7 +32,7 @@ PROJECTION_MAX_PAIRS = 500
 PROJECTION_DECIMALS = 4
 
 # Two centred rows are rank one, so their CKA is 1 whatever the features: CKA needs 3.
-CKA_MIN_PAIRS = 3
+CKA_MIN_PAIRS = _cka.DEBIASED_MIN_PAIRS
 
 # BLAS/OpenMP threads while scoring. The work is small dense algebra (fits of a few
 # thousand rows, a 1,000 x 512 SVD, one n x n kernel). On a 2-core machine shared with
@@ -40,8 +41,17 @@ CKA_MIN_PAIRS = 3
 # (tests/benchmarks/bench_stats.py prints the ratios), so scoring is single-threaded.
 _THREADS = 1
 
+# Subgroups scored at once (threads; None: one per core, at most
+# invariance.breakdowns.MAX_WORKERS). On the shared 2-core test machine (load average 7-9)
+# a thread pool was no faster than one subgroup after another: best of 2 runs 7.81 s
+# against 7.58 s for 2,000 x 512-d with 4 x 3 breakdowns, 0.75 s against 0.72 s for 200
+# pairs, with more CPU time spent. So subgroups run one after another;
+# tests/benchmarks/bench_stats.py prints the ratio for a machine with free cores.
+_WORKERS = 1
+
+
 def _min_pairs(folds):
-    """Pairs needed for the whole score: every metric must be computable."""
+    """Pairs needed for the whole score, and for a subgroup's tests: every metric computable."""
     return max(_domain.MIN_PAIRS_PER_FOLD * folds, _mmd.MIN_PAIRS)
 
 
@@ -84,32 +94,6 @@ def _guard(fn, *args, **kwargs):
         return {"not_computable": str(err)}
 
 
-def _domain_metric(clean, cluttered, seed, folds):
-    n = clean.shape[0]
-    need = _domain.MIN_PAIRS_PER_FOLD * folds
-    if n < need:
-        return _not_computable(n, need)
-    result = _guard(_domain.domain_classifier, clean, cluttered, folds=folds, seed=seed)
-    result.pop("decision", None)
-    return result
-
-
-def _mmd_metric(clean, cluttered, seed, permutations):
-    n = clean.shape[0]
-    if n < _mmd.MIN_PAIRS:
-        return _not_computable(n, _mmd.MIN_PAIRS)
-    return _guard(
-        _mmd.paired_permutation_test, clean, cluttered, permutations=permutations, seed=seed
-    )
-
-
-def _drift_full(clean, cluttered, seed):
-    n = clean.shape[0]
-    if n < _drift.MIN_PAIRS:
-        return _not_computable(n, _drift.MIN_PAIRS)
-    return _guard(_drift.paired_drift, clean, cluttered, seed=seed)
-
-
 def _drift_summary(full):
     if "not_computable" in full:
         return full
@@ -120,56 +104,86 @@ def _drift_summary(full):
         "typical_distance",
         "pair_retrieval_top1",
     )
-    return {key: full[key] for key in keys}
+    return {key: full[key] for key in keys if key in full}
 
 
-def _cka_metric(clean, cluttered):
-    if clean.shape[0] < CKA_MIN_PAIRS:
-        return _not_computable(clean.shape[0], CKA_MIN_PAIRS)
-    return _guard(_cka.linear_cka, clean, cluttered)
+class _Layer:
+    """The work one feature matrix pair shares between its whole set and its subgroups.
+
+    The MMD kernel matrix of all pairs is built once (one bandwidth, the median
+    heuristic over all pairs) and every subgroup's test is a slice of it
+    (:class:`invariance.metrics.mmd.PairedKernel`); the other metrics see the subgroup's
+    rows. ``metrics(idx)`` is seeded by itself, so subgroups may run in any order or
+    on several threads.
+    """
+
+    def __init__(self, clean, cluttered, tasks, options):
+        self.clean, self.cluttered, self.tasks = clean, cluttered, tasks
+        self.seed, self.permutations, self.folds = options.seed, options.permutations, options.folds
+        try:
+            self.kernel = _mmd.PairedKernel(clean, cluttered)
+        except InvarianceError as err:
+            self.kernel = {"not_computable": str(err)}
+
+    def rows(self, idx):
+        if idx is None:
+            return self.clean, self.cluttered, self.tasks
+        return self.clean[idx], self.cluttered[idx], {k: v[idx] for k, v in self.tasks.items()}
+
+    def drift(self, idx=None):
+        clean, cluttered, _ = self.rows(idx)
+        if clean.shape[0] < _drift.MIN_PAIRS:
+            return _not_computable(clean.shape[0], _drift.MIN_PAIRS)
+        return _guard(_drift.paired_drift, clean, cluttered, seed=self.seed)
+
+    def mmd(self, idx=None):
+        n = self.clean.shape[0] if idx is None else idx.size
+        if n < _mmd.MIN_PAIRS:
+            return _not_computable(n, _mmd.MIN_PAIRS)
+        if isinstance(self.kernel, dict):
+            return dict(self.kernel)
+        return _guard(self.kernel.test, idx, permutations=self.permutations, seed=self.seed)
+
+    def domain(self, clean, cluttered):
+        n, need = clean.shape[0], _domain.MIN_PAIRS_PER_FOLD * self.folds
+        if n < need:
+            return _not_computable(n, need)
+        result = _guard(_domain.domain_classifier, clean, cluttered, folds=self.folds,
+                        seed=self.seed, permutations=self.permutations)
+        result.pop("decision", None)
+        return result
+
+    def metrics(self, idx=None, drift=None):
+        """Every metric on the pairs ``idx`` (default all); ``drift`` if already computed."""
+        clean, cluttered, tasks = self.rows(idx)
+        drift = self.drift(idx) if drift is None else drift
+        out = {"domain_classifier": self.domain(clean, cluttered), "mmd": self.mmd(idx)}
+        if tasks:
+            out["probe"] = _probe.linear_probes(clean, cluttered, tasks, seed=self.seed)
+        out["paired_drift"] = _drift_summary(drift)
+        if clean.shape[0] < CKA_MIN_PAIRS:
+            out["cka"] = _not_computable(clean.shape[0], CKA_MIN_PAIRS)
+            out["cka_linear"] = out["cka"]
+        else:
+            # debiased CKA is the reported one: linear CKA drifts towards 1 when d is large
+            # against n (Nguyen, Raghu & Kornblith, ICLR 2021); linear kept under its own key
+            out["cka"] = _guard(_cka.debiased_cka, clean, cluttered)
+            out["cka_linear"] = _guard(_cka.linear_cka, clean, cluttered)
+        return out
 
 
-def _metrics(clean, cluttered, tasks, seed, permutations, folds, drift=None):
-    drift = _drift_full(clean, cluttered, seed) if drift is None else drift
-    out = {
-        "domain_classifier": _domain_metric(clean, cluttered, seed, folds),
-        "mmd": _mmd_metric(clean, cluttered, seed, permutations),
-    }
-    if tasks:
-        out["probe"] = _probe.linear_probes(clean, cluttered, tasks, seed=seed)
-    out["paired_drift"] = _drift_summary(drift)
-    out["cka"] = _cka_metric(clean, cluttered)
-    return out
-
-
-def _is_missing(value):
-    text = str(value)
-    return value is None or text == "" or text.lower() == "nan"
-
-
-def _factor_key(value):
-    """A factor value as the breakdown key: 2.0 reads "2", text stays as it is."""
-    if isinstance(value, (float, np.floating)) and float(value).is_integer():
-        return str(int(value))
-    return str(value)
-
-
-def _breakdowns(clean, cluttered, tasks, factors, seed, permutations, folds):
-    out = {}
-    for column, values in factors.items():
-        groups = {}
-        keys = np.array(["" if _is_missing(v) else _factor_key(v) for v in values.tolist()])
-        for value in sorted(set(keys.tolist()) - {""}):
-            idx = np.flatnonzero(keys == value)
-            sub_tasks = {name: labels[idx] for name, labels in tasks.items()}
-            groups[value] = {
-                "pairs": int(idx.size),
-                "metrics": _metrics(
-                    clean[idx], cluttered[idx], sub_tasks, seed, permutations, folds
-                ),
-            }
-        out[column] = groups
-    return out
+def _breakdowns(layer, factors, folds):
+    """``breakdowns``, the Holm correction note, skipped subgroups and their warnings."""
+    groups, unlabelled = _bd.subgroups(factors)
+    need = _min_pairs(folds)
+    skipped = _bd.skipped(
+        groups, need,
+        f"the subgroup tests need {need} pairs (domain classifier: {_domain.MIN_PAIRS_PER_FOLD} "
+        f"per fold x {folds} folds; MMD: {_mmd.MIN_PAIRS}); measures that need fewer are kept",
+    )
+    breakdowns = _bd.run(groups, layer.metrics, workers=_WORKERS)
+    correction = _bd.correct(breakdowns)
+    return breakdowns, correction, skipped, _bd.warnings(skipped, unlabelled, need)
 
 
 def _tsne(pooled, seed):
@@ -304,15 +318,18 @@ def score_features(
     names : sequence of str, optional
         A name per pair for the per-pair drift list; default the row index.
     options : ScoringOptions, optional
-        Seed (every split, permutation, bootstrap and subsample), MMD permutations,
-        domain-classifier folds and whether to add a t-SNE view (``projection["tsne"]``);
-        default ``ScoringOptions()``.
+        Seed (every split, permutation, bootstrap and subsample), permutations of the
+        MMD and domain-classifier tests, domain-classifier folds and whether to add a
+        t-SNE view (``projection["tsne"]``); default ``ScoringOptions()``.
 
     Returns
     -------
     dict
         ``metrics`` (``domain_classifier``, ``mmd``, ``probe`` when tasks are given,
-        ``paired_drift``, ``cka``), ``breakdowns`` ({column: {value: {"pairs", "metrics"}}}),
+        ``paired_drift``, ``cka``), ``breakdowns`` ({column: {value: {"pairs", "metrics"}}};
+        each subgroup's domain-classifier and MMD entries add ``p_value_adjusted``, Holm
+        1979 across the subgroups), ``breakdowns_correction`` (how they were adjusted),
+        ``breakdowns_skipped`` (subgroups too small for the tests, with the reason),
         ``pairs`` ([{"name", "drift"}]), ``projection`` (2-D PCA of a seeded subsample of
         at most 500 pairs, with their ``indices``) and ``warnings``.
 
@@ -324,15 +341,26 @@ def score_features(
     """
     options = _scoring_options(options)
     with threadpool_limits(limits=_THREADS):
-        result = _score(clean, cluttered, tasks, factors, names, options.seed, options.permutations,
-                        options.folds, options.tsne)
+        result = _score(clean, cluttered, tasks, factors, names, options)
     result = _plain(result)
     _check_finite(result)
     return result
 
 
-def _score(clean, cluttered, tasks, factors, names, seed, permutations, folds, tsne=False):
-    clean, cluttered = _domain._validate_pairs(clean, cluttered, min_pairs=_min_pairs(folds))
+def _validated(clean, cluttered, folds):
+    clean, cluttered = _domain._validate_pairs(clean, cluttered)
+    need = _min_pairs(folds)
+    if clean.shape[0] < need:
+        raise InvarianceError(
+            f"only {clean.shape[0]} pairs of features; need at least {need} (the domain "
+            f"classifier holds out {_domain.MIN_PAIRS_PER_FOLD} pairs in each of {folds} folds, "
+            f"the MMD test needs {_mmd.MIN_PAIRS}): add pairs or lower folds"
+        )
+    return clean, cluttered
+
+
+def _score(clean, cluttered, tasks, factors, names, options):
+    clean, cluttered = _validated(clean, cluttered, options.folds)
     n = clean.shape[0]
     tasks = _check_columns("tasks", tasks, n)
     factors = _check_columns("factors", factors, n)
@@ -342,20 +370,23 @@ def _score(clean, cluttered, tasks, factors, names, seed, permutations, folds, t
         raise InvarianceError(
             f"names has {len(names)} entries for {n} pairs: give one name per pair"
         )
-    drift = _drift_full(clean, cluttered, seed)
-    metrics = _metrics(clean, cluttered, tasks, seed, permutations, folds, drift=drift)
+    layer = _Layer(clean, cluttered, tasks, options)
+    drift = layer.drift()
+    metrics = layer.metrics(drift=drift)
+    breakdowns, correction, skipped, group_warnings = _breakdowns(layer, factors, options.folds)
     per_pair = drift.get("per_pair")
-    result = {
+    return {
         "metrics": metrics,
-        "breakdowns": _breakdowns(clean, cluttered, tasks, factors, seed, permutations, folds),
+        "breakdowns": breakdowns,
+        "breakdowns_correction": correction,
+        "breakdowns_skipped": skipped,
         "pairs": [
             {"name": str(names[i]), "drift": None if per_pair is None else float(per_pair[i])}
             for i in range(n)
         ],
-        "projection": _projection(clean, cluttered, seed, tsne),
-        "warnings": _feature_warnings(clean, cluttered) + _metric_warnings(metrics),
+        "projection": _projection(clean, cluttered, options.seed, options.tsne),
+        "warnings": _feature_warnings(clean, cluttered) + _metric_warnings(metrics) + group_warnings,
     }
-    return result
 
 
 def load_feature_files(clean_path, cluttered_path):

@@ -68,7 +68,8 @@ def test_blended_digits_show_a_large_significant_gap(digits_pairs):
     m = result["metrics"]
     assert m["domain_classifier"]["accuracy"] > 0.95
     assert m["domain_classifier"]["ci"][0] > 0.9
-    assert m["domain_classifier"]["p_value"] < 1e-10
+    # a permutation test with B = 200 reaches at most 1 / (B + 1) (Phipson & Smyth 2010)
+    assert m["domain_classifier"]["p_value"] == pytest.approx(1 / 201)
     assert m["mmd"]["p_value"] == pytest.approx(1 / 201)  # no swap beats the observed
     probe = m["probe"]["digit"]
     assert probe["clean"] > 0.8  # digits stay linearly readable through random features

@@ -85,7 +85,7 @@ def test_score_help_says_what_data_may_be_and_lists_exit_codes():
 @pytest.mark.parametrize("args, flag", [
     (["score", "--features", "a.npy", "b.npy", "--permutations", "0"], "--permutations"),
     (["score", "--features", "a.npy", "b.npy", "--max-domain-accuracy", "nan"], "--max-domain-accuracy"),
-    (["align", "d", "--encoder", "x", "--out", "o.pt", "--held-out", "0.95"], "--held-out"),
+    (["align", "d", "--encoder", "torchvision:resnet18", "--out", "o.pt", "--held-out", "0.95"], "--held-out"),
 ])
 def test_bad_option_values_are_usage_errors_naming_the_flag(tmp_path, args, flag):
     res = CliRunner().invoke(cli, args)

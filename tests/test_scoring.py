@@ -5,7 +5,10 @@ import json
 import numpy as np
 import pytest
 
+from invariance import scoring
+from invariance.breakdowns import holm_adjust
 from invariance.errors import InvarianceError
+from invariance.metrics.mmd import paired_permutation_test
 from invariance.metrics.drift import paired_drift
 from invariance.options import ScoringOptions
 from invariance.readings import describe_metrics
@@ -52,8 +55,10 @@ def test_result_has_the_design_keys(scored):
     assert isinstance(m["cka"], float)
     assert {"kind", "clean", "cluttered", "gap"} <= set(m["probe"]["colour"])
     assert m["probe"]["size"]["kind"] == "regression"
-    # a shift of 0.5 against noise 0.3 is obvious to every test
-    assert m["domain_classifier"]["p_value"] < 0.01 and m["mmd"]["p_value"] < 0.05
+    # a shift of 0.5 against noise 0.3 is obvious to every test: the domain classifier's
+    # permutation p-value is at its floor 1 / (B + 1) (Phipson & Smyth 2010)
+    assert m["domain_classifier"]["p_value"] <= 1 / (FAST["permutations"] + 1)
+    assert m["mmd"]["p_value"] < 0.05
     json.dumps(result, allow_nan=False)
 
 
@@ -73,8 +78,90 @@ def test_breakdown_equals_scoring_the_subset(scored):
     clean, cluttered, *_, result, _ = scored
     wood = result["breakdowns"]["factor_background"]["wood"]["metrics"]
     alone = score_features(clean[:40], cluttered[:40], options=ScoringOptions(seed=2, **FAST))["metrics"]
-    assert wood["domain_classifier"] == alone["domain_classifier"]
-    assert wood["mmd"] == alone["mmd"] and wood["cka"] == alone["cka"]
+    adjusted = dict(wood["domain_classifier"])
+    assert adjusted.pop("p_value_adjusted") >= adjusted["p_value"]
+    assert adjusted == alone["domain_classifier"]
+    assert wood["cka"] == alone["cka"]
+    # the subgroup's MMD test is a slice of the whole set's kernel matrix, so it uses the
+    # whole set's bandwidth: the standalone test with that bandwidth (same seed) is the same
+    whole = result["metrics"]["mmd"]
+    standalone = paired_permutation_test(clean[:40], cluttered[:40], bandwidth=whole["bandwidth"],
+                                         permutations=FAST["permutations"], seed=2)
+    mmd = dict(wood["mmd"])
+    assert mmd.pop("p_value_adjusted") >= mmd["p_value"]
+    assert mmd["p_value"] == standalone["p_value"]
+    assert mmd["mmd2"] == pytest.approx(standalone["mmd2"], rel=1e-12)
+
+
+def test_holm_adjusted_p_values_by_hand():
+    # Holm, Scand. J. Statist. 6 (1979): sort p_(1) <= ... <= p_(m); reject H_(i) while
+    # p_(i) <= alpha / (m - i + 1). Adjusted p-values (Wright, Biometrics 48, 1992):
+    # max_{j<=i} min(1, (m - j + 1) p_(j)). Worked by hand for p = (0.01, 0.04, 0.03, 0.005):
+    #   sorted 0.005, 0.01, 0.03, 0.04 times 4, 3, 2, 1 = 0.02, 0.03, 0.06, 0.04
+    #   running maximum 0.02, 0.03, 0.06, 0.06 -> in input order 0.03, 0.06, 0.06, 0.02.
+    np.testing.assert_allclose(holm_adjust([0.01, 0.04, 0.03, 0.005]), [0.03, 0.06, 0.06, 0.02])
+    # At alpha = 0.05 Holm rejects 0.005 (<= 0.05/4) and 0.01 (<= 0.05/3), then stops at
+    # 0.03 > 0.05/2: exactly the adjusted values <= 0.05.
+    assert list(holm_adjust([0.01, 0.04, 0.03, 0.005]) <= 0.05) == [True, False, False, True]
+    # capped at 1 (2 x 0.5 = 1, then the running maximum), one test is its own p-value
+    np.testing.assert_allclose(holm_adjust([0.6, 0.5]), [1.0, 1.0])
+    np.testing.assert_allclose(holm_adjust([0.2]), [0.2])
+    assert holm_adjust([]).size == 0
+
+
+def test_breakdowns_carry_holm_adjusted_p_values(scored):
+    *_, result, _ = scored
+    correction = result["breakdowns_correction"]
+    assert correction["method"] == "holm"
+    for name in ("domain_classifier", "mmd"):
+        entries = [group["metrics"][name] for groups in result["breakdowns"].values()
+                   for group in groups.values() if "p_value" in group["metrics"][name]]
+        # steel (8 pairs) is too small for MMD, so MMD's family is one test shorter
+        assert correction["tests"][name] == len(entries) == (4 if name == "domain_classifier" else 3)
+        raw = [e["p_value"] for e in entries]
+        np.testing.assert_allclose([e["p_value_adjusted"] for e in entries], holm_adjust(raw))
+    # the breakdowns keep their shape: columns hold factor values only
+    assert set(result["breakdowns"]) == {"factor_background", "level"}
+    assert all(set(g) == {"pairs", "metrics"} for groups in result["breakdowns"].values()
+               for g in groups.values())
+
+
+def test_subgroup_of_one_pair_is_listed_once_not_dropped():
+    clean, cluttered = _pairs(n=30, seed=12, shift=0.2)
+    factors = {"factor_a": np.array(["a"] * 29 + ["b"]), "level": np.array(["1"] * 15 + ["2"] * 15)}
+    result = score_features(clean, cluttered, factors=factors, options=ScoringOptions(**FAST))
+    lone = result["breakdowns"]["factor_a"]["b"]
+    assert lone["pairs"] == 1
+    assert all("not_computable" in v for v in lone["metrics"].values())
+    skipped = result["breakdowns_skipped"]
+    assert [(s["column"], s["value"], s["pairs"]) for s in skipped] == [("factor_a", "b", 1)]
+    assert skipped[0]["needed"] == 10 and "MMD" in skipped[0]["reason"]
+    assert sum("factor_a=b (1)" in w for w in result["warnings"]) == 1
+    assert result["breakdowns_correction"]["tests"] == {"domain_classifier": 3, "mmd": 3}
+    json.dumps(result, allow_nan=False)
+
+
+def test_pairs_without_a_factor_value_are_counted():
+    clean, cluttered = _pairs(n=30, seed=13)
+    values = np.array(["x"] * 12 + ["y"] * 12 + [""] * 3 + [None] * 3, dtype=object)
+    result = score_features(clean, cluttered, factors={"factor_a": values}, options=ScoringOptions(**FAST))
+    assert set(result["breakdowns"]["factor_a"]) == {"x", "y"}
+    assert any(w.startswith("6 pairs have no factor_a value") for w in result["warnings"])
+
+
+def test_threads_and_repeated_subgroups_do_not_change_the_result(monkeypatch):
+    clean, cluttered = _pairs(n=60, seed=14, shift=0.2)
+    level = np.repeat(["1", "2", "3"], 20)
+    factors = {"level": level, "factor_same": level.copy(), "factor_b": np.tile(["p", "q"], 30)}
+    options = ScoringOptions(**FAST)
+    monkeypatch.setattr(scoring, "_WORKERS", 1)
+    serial = score_features(clean, cluttered, factors=factors, options=options)
+    monkeypatch.setattr(scoring, "_WORKERS", 3)
+    threaded = score_features(clean, cluttered, factors=factors, options=options)
+    assert json.dumps(serial, sort_keys=True) == json.dumps(threaded, sort_keys=True)
+    # the same pairs under two columns are scored once but are two tests of the family
+    assert serial["breakdowns"]["level"] == serial["breakdowns"]["factor_same"]
+    assert serial["breakdowns_correction"]["tests"]["mmd"] == 8
 
 
 def test_pairs_carry_names_and_drift(scored):
@@ -201,6 +288,41 @@ def test_readings_say_what_the_numbers_mean(scored):
 
 
 # Inputs that used to end in a traceback: each is now one clear InvarianceError.
+
+
+def test_fewer_pairs_than_folds_need_is_a_clear_error_naming_the_folds():
+    clean, cluttered = _pairs(n=12, seed=15)
+    with pytest.raises(InvarianceError, match=r"need at least 40 .*20 folds.*lower folds"):
+        score_features(clean, cluttered, options=ScoringOptions(permutations=99, folds=20))
+
+
+@pytest.mark.parametrize("kind", ["all_zero", "constant", "zero_clean_only"])
+def test_constant_or_zero_features_give_reasons_not_nan(kind):
+    rng = np.random.default_rng(16)
+    clean = np.zeros((24, 5)) if kind != "constant" else np.full((24, 5), 3.0)
+    cluttered = rng.standard_normal((24, 5)) if kind == "zero_clean_only" else clean.copy()
+    factors = {"level": np.repeat(["1", "2"], 12)}
+    result = score_features(clean, cluttered, factors=factors, options=ScoringOptions(**FAST))
+    json.dumps(result, allow_nan=False)  # no NaN or inf anywhere
+    metrics = result["metrics"]
+    assert "not_computable" in metrics["cka"] and "not_computable" in metrics["paired_drift"]
+    if kind != "zero_clean_only":
+        # no bandwidth exists when every feature vector is the same: said once per layer
+        assert "identical" in metrics["mmd"]["not_computable"]
+        assert "identical" in result["breakdowns"]["level"]["1"]["metrics"]["mmd"]["not_computable"]
+    assert result["breakdowns_correction"]["tests"]["mmd"] == (2 if kind == "zero_clean_only" else 0)
+
+
+def test_many_more_dimensions_than_pairs_score_cleanly():
+    # d >> n: 12 pairs of 4,000-d features; every value finite and in range.
+    rng = np.random.default_rng(17)
+    z = rng.standard_normal((12, 4000))
+    clean, cluttered = z + 0.3 * rng.standard_normal(z.shape), z + 0.3 * rng.standard_normal(z.shape)
+    result = score_features(clean, cluttered, options=ScoringOptions(permutations=99, folds=2))
+    json.dumps(result, allow_nan=False)
+    m = result["metrics"]
+    assert 0.0 <= m["domain_classifier"]["accuracy"] <= 1.0 and 0.0 < m["mmd"]["p_value"] <= 1.0
+    assert 0.0 <= m["cka"] <= 1.0
 
 
 def test_features_with_no_columns_are_a_clear_error():

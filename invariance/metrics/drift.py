@@ -3,19 +3,22 @@
 from __future__ import annotations
 
 import numpy as np
-from scipy.spatial.distance import pdist
-from scipy.stats import bootstrap
+from scipy.spatial.distance import pdist, squareform
 
 from invariance.metrics.domain import _check_int, _validate_pairs
+from invariance.metrics.probe import _expanded_levels
 
 # Clean rows used for the typical between-scene distance: 3,000 rows give 4.5 million
 # distances, plenty for a median (common practice). Evenly spaced rows, no seed needed.
 TYPICAL_MAX_POINTS = 3000
 
-# Bootstrap resamples for the interval of the mean; 2,000 is a usual choice for a 95%
-# percentile interval (common practice; Efron & Tibshirani 1993 advise >= 1,000 for
+# Bootstrap resamples for the interval of the relative drift; 2,000 is a usual choice for
+# a 95% percentile interval (common practice; Efron & Tibshirani 1993 advise >= 1,000 for
 # intervals, from memory).
 BOOTSTRAP_RESAMPLES = 2000
+
+# About 4 million resampled pair indices (and gathered values) in memory at a time.
+_BOOTSTRAP_CELLS = 2**22
 
 # Rows of the clean x cluttered similarity computed at once for retrieval (memory bound).
 _RETRIEVAL_BLOCK = 256
@@ -43,12 +46,17 @@ def _half_squared_distance(A, B, block=_RETRIEVAL_BLOCK):
     return out
 
 
-def _typical_distance(clean_unit):
-    rows = clean_unit
-    if rows.shape[0] > TYPICAL_MAX_POINTS:
-        rows = rows[np.linspace(0, rows.shape[0] - 1, TYPICAL_MAX_POINTS).round().astype(int)]
+def _typical_rows(n):
+    """Clean rows behind the typical distance: all, or TYPICAL_MAX_POINTS evenly spaced."""
+    if n > TYPICAL_MAX_POINTS:
+        return np.linspace(0, n - 1, TYPICAL_MAX_POINTS).round().astype(int)
+    return np.arange(n)
+
+
+def _scene_distances(clean_unit, rows):
+    """Cosine distances between the given clean rows (condensed, as scipy's pdist)."""
     # cosine distance of unit vectors is half their squared Euclidean distance
-    return float(np.median(0.5 * pdist(rows, "sqeuclidean")))
+    return 0.5 * pdist(clean_unit[rows], "sqeuclidean")
 
 
 def _retrieval_top1(clean_unit, cluttered_unit):
@@ -70,6 +78,18 @@ def paired_drift(clean, cluttered, *, seed=0, resamples=BOOTSTRAP_RESAMPLES):
     feature where it was, about 1 means clutter moves it as far as changing the scene
     (common practice; the normalisation makes layers and encoders comparable).
 
+    The relative drift is a ratio of two estimates from the same pairs, the mean drift
+    and the median scene distance, so its interval resamples pairs and recomputes both
+    (Efron & Tibshirani, "An Introduction to the Bootstrap", 1993, ch. 13), and takes the
+    expanded percentile interval, which widens the percentiles to the t-interval's
+    width for small samples (Hesterberg, The American Statistician 69, 2015). Holding
+    the median fixed covered the true value in 67-72% of runs at nominal 95% for scenes
+    with a few dominant factors and 90-92% for lognormal features; this interval
+    covers 93.9-95.4% for Gaussian, sparse ReLU, heavy-tailed, lognormal and few-factor
+    features at 60, 120 and 400 pairs (tests/benchmarks/bench_coverage.py). The
+    resampled median is its Bahadur linearisation (``_resampled_typical``), which costs
+    O(resamples x pairs) instead of O(resamples x pairs^2).
+
     Parameters
     ----------
     clean, cluttered : ndarray of shape (n_pairs, d)
@@ -77,16 +97,17 @@ def paired_drift(clean, cluttered, *, seed=0, resamples=BOOTSTRAP_RESAMPLES):
     seed : int, default=0
         Seed of the bootstrap.
     resamples : int, default=2000
-        Bootstrap resamples of the mean.
+        Bootstrap resamples of the pairs (>= 100).
 
     Returns
     -------
     dict
-        ``relative_drift`` (mean over pairs), ``relative_drift_ci`` (95% percentile
-        bootstrap interval over pairs, ``scipy.stats.bootstrap(method="percentile")``),
-        ``ci_method``, ``typical_distance`` (median clean-clean cosine distance),
-        ``per_pair`` (ndarray of shape (n_pairs,)) and ``pair_retrieval_top1``.
-        ``{"not_computable": reason}`` for zero-norm rows or identical clean scenes.
+        ``relative_drift`` (mean over pairs), ``relative_drift_ci`` (95% expanded
+        percentile bootstrap interval over pairs, mean drift and median scene distance
+        both recomputed per resample), ``ci_method``, ``typical_distance`` (median
+        clean-clean cosine distance), ``per_pair`` (ndarray of shape (n_pairs,)) and
+        ``pair_retrieval_top1``. ``{"not_computable": reason}`` for zero-norm rows or
+        identical clean scenes.
     """
     _check_int("resamples", resamples, 100)
     _check_int("seed", seed, 0)
@@ -101,37 +122,91 @@ def paired_drift(clean, cluttered, *, seed=0, resamples=BOOTSTRAP_RESAMPLES):
         }
     clean_unit = _unit_rows(clean, clean_norms)
     cluttered_unit = _unit_rows(cluttered, cluttered_norms)
-    typical = _typical_distance(clean_unit)
+    rows = _typical_rows(clean.shape[0])
+    scene = _scene_distances(clean_unit, rows)
+    typical = float(np.median(scene))
     if not typical > _ROUNDING:
         return {
             "not_computable": "the clean features of different scenes point the same "
             "way (median cosine distance 0), so there is no scene scale to compare with"
         }
     # 1 - cos written as half the squared distance of unit vectors keeps it >= 0
-    per_pair = _half_squared_distance(clean_unit, cluttered_unit) / typical
-    interval = _bootstrap_mean(per_pair, seed, resamples)
+    raw = _half_squared_distance(clean_unit, cluttered_unit)
+    per_pair = raw / typical
+    interval = _bootstrap_ratio(raw, rows, scene, typical, seed, resamples)
     return {
         "relative_drift": float(per_pair.mean()),
         "relative_drift_ci": interval,
-        "ci_method": f"percentile bootstrap over pairs, {resamples} resamples, 95%",
+        "ci_method": f"expanded percentile bootstrap over pairs, mean drift and median "
+        f"scene distance both recomputed, {resamples} resamples, 95%",
         "typical_distance": typical,
         "per_pair": per_pair,
         "pair_retrieval_top1": _retrieval_top1(clean_unit, cluttered_unit),
     }
 
 
-def _bootstrap_mean(values, seed, resamples):
-    if np.ptp(values) == 0:
-        # every resample has the same mean; scipy would warn about a degenerate sample
-        return [float(values[0]), float(values[0])]
-    res = bootstrap(
-        (values,),
-        np.mean,
-        n_resamples=resamples,
-        confidence_level=0.95,
-        method="percentile",
-        rng=np.random.default_rng(seed),
-        # about 4 million resampled values (and their indices) in memory at a time
-        batch=max(1, 2**22 // values.size),
-    )
-    return [float(res.confidence_interval.low), float(res.confidence_interval.high)]
+def _row_influence(scene, typical):
+    """Each typical row's share of scene distances at or below the median, centred.
+
+    F_i - mean(F), F_i the fraction of row i's distances to the other rows that are <= the
+    median: the Hoeffding projection of the fraction of pairs below the median (a
+    U-statistic of order 2; Hoeffding, Annals of Math. Stat. 1948).
+    """
+    below = squareform(scene <= typical)  # zero diagonal: a row is not its own scene
+    frac = below.sum(axis=1) / (below.shape[0] - 1)
+    return frac - frac.mean()
+
+
+def _resampled_typical(sorted_scene, influence, weights):
+    """Median scene distance of each resample, from its row multiplicities ``weights``.
+
+    A resample with multiplicities w moves the fraction of pairs below the median by
+    about 2 sum_i w_i (F_i - mean F) / sum_i w_i (the projection, order-2 U-statistic), so
+    its median is the original distances' quantile at 1/2 minus that shift: the Bahadur
+    representation of a U-quantile (Choudhury & Serfling, J. Stat. Plann. Inference 1988;
+    from memory), read off the empirical quantile function so no density is estimated.
+    Checked against recomputing the median from the resampled rows in the tests.
+    """
+    shift = 2.0 * (weights @ influence) / weights.sum(axis=1)
+    position = np.clip(0.5 - shift, 0.0, 1.0) * (sorted_scene.size - 1)
+    low = np.floor(position).astype(int)
+    high = np.minimum(low + 1, sorted_scene.size - 1)
+    # linear interpolation between order statistics, numpy's default quantile
+    return sorted_scene[low] + (position - low) * (sorted_scene[high] - sorted_scene[low])
+
+
+def _resampled_ratios(raw, rows, scene, typical, seed, resamples):
+    """Relative drift of each pair resample: mean raw drift over the median scene distance.
+
+    ``raw`` holds the per-pair cosine drifts, ``rows`` the clean rows behind the median and
+    ``scene`` their condensed distances (median ``typical``). Each resample draws n pairs
+    with replacement; the mean is recomputed exactly, the median by ``_resampled_typical``
+    from the multiplicities of the typical rows in the same resample.
+    """
+    n = raw.size
+    rng = np.random.default_rng(seed)
+    influence = _row_influence(scene, typical)
+    sorted_scene = np.sort(scene)
+    # hold each resampled median at or above the smallest non-zero scene distance: the
+    # ratio stays finite even when duplicate clean rows put zeros among the distances
+    floor = sorted_scene[np.searchsorted(sorted_scene, _ROUNDING, side="right")]
+    chunk = max(1, _BOOTSTRAP_CELLS // n)
+    ratios = []
+    for start in range(0, resamples, chunk):
+        size = min(chunk, resamples - start)
+        idx = rng.integers(0, n, size=(size, n))
+        # multiplicity of each pair in each resample
+        counts = np.bincount(
+            (idx + n * np.arange(size)[:, None]).ravel(), minlength=size * n
+        ).reshape(size, n).astype(np.float64)
+        typical_counts = counts if rows.size == n else counts[:, rows]
+        medians = _resampled_typical(sorted_scene, influence, typical_counts)
+        ratios.append((counts @ raw) / n / np.maximum(medians, floor))
+    return np.concatenate(ratios)
+
+
+def _bootstrap_ratio(raw, rows, scene, typical, seed, resamples):
+    """95% expanded percentile interval of the resampled relative drifts (Hesterberg 2015)."""
+    ratios = _resampled_ratios(raw, rows, scene, typical, seed, resamples)
+    low, high = np.percentile(ratios, _expanded_levels(raw.size))
+    return [float(low), float(high)]

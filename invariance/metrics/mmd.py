@@ -3,7 +3,8 @@
 Gaussian kernel with the median-heuristic bandwidth, unbiased MMD^2 (Gretton et al.,
 JMLR 13, 2012) and a permutation test that swaps the two images *within* pairs, the
 exchangeable null for paired data. The B permutations are B quadratic forms over one
-n x n matrix, evaluated in blocks.
+n x n matrix, evaluated in blocks. ``PairedKernel`` builds that matrix once for all pairs
+and tests any subset (a breakdown subgroup) on a slice of it.
 """
 
 from __future__ import annotations
@@ -171,11 +172,195 @@ def _pair_matrix(X, Y, bandwidth, dtype):
     return H
 
 
+def _squared_blocks(X, Y, dtype):
+    """Squared distances |x_i-x_j|^2, |y_i-y_j|^2, |x_i-y_j|^2 of X / s and Y / s, and s.
+
+    s = max |feature| keeps float32 squares finite; distances scale by s, so the median
+    and the bandwidth are multiplied back by it. Also the squared row norms, for telling
+    a zero distance from rounding.
+    """
+    scale = float(max(np.max(np.abs(X)), np.max(np.abs(Y)), np.finfo(np.float64).tiny))
+    X = (X / scale).astype(dtype, copy=False)
+    Y = (Y / scale).astype(dtype, copy=False)
+    nx, ny = (X * X).sum(1), (Y * Y).sum(1)
+    blocks = []
+    for A, na, B, nb in ((X, nx, X, nx), (Y, ny, Y, ny), (X, nx, Y, ny)):
+        sq = A @ B.T
+        sq *= dtype.type(-2.0)
+        sq += na[:, None]
+        sq += nb[None, :]
+        # rounding can make |a - b|^2 slightly negative for near-identical rows
+        np.maximum(sq, 0.0, out=sq)
+        blocks.append(sq)
+    return blocks, (nx, ny), scale
+
+
+def _block_median(blocks, norms, scale, max_points=MEDIAN_MAX_POINTS):
+    """``median_bandwidth`` of the pooled rows [X; Y], read from the squared-distance blocks.
+
+    The same rows as ``median_bandwidth`` (all 2n, or ``max_points`` evenly spaced), the
+    same distances up to rounding, without a second pass over the features. Squared
+    distances within rounding of zero are duplicates, left out as ``median_bandwidth``
+    leaves out zeros: |a|^2 + |b|^2 - 2 a.b loses about eps of the squared norms to
+    cancellation, and 16 eps of the largest one keeps a margin (common practice for
+    rounding guards).
+    """
+    sxx, syy, sxy = blocks
+    n = sxx.shape[0]
+    rows = np.arange(2 * n)
+    if rows.size > max_points:
+        rows = np.linspace(0, 2 * n - 1, max_points).round().astype(int)
+    a, b = rows[rows < n], rows[rows >= n] - n
+    whole = a.size == n and b.size == n
+    xx, yy, xy = (sxx, syy, sxy) if whole else (sxx[np.ix_(a, a)], syy[np.ix_(b, b)], sxy[np.ix_(a, b)])
+    values = np.concatenate([xx[np.triu_indices(a.size, 1)], yy[np.triu_indices(b.size, 1)], xy.ravel()])
+    rounding = 16 * np.finfo(sxx.dtype).eps * float(max(norms[0].max(), norms[1].max()))
+    values = values[values > rounding]
+    if values.size == 0:
+        raise InvarianceError(
+            "all feature vectors are identical, so no kernel bandwidth can be chosen: "
+            "check that the encoder output varies between images"
+        )
+    # the median of the distances: sqrt is monotone, so take the middle squared distances
+    middle = sorted({(values.size - 1) // 2, values.size // 2})
+    picked = np.sqrt(np.partition(values, middle)[middle].astype(np.float64))
+    return float(picked.mean()) * scale
+
+
+def _pair_from_squared(blocks, scale, bandwidth):
+    """H from the squared-distance blocks (consumed in place), zero diagonal."""
+    sxx, syy, sxy = blocks
+    factor = sxx.dtype.type(-0.5 * (scale / bandwidth) ** 2)
+    for sq in blocks:
+        sq *= factor
+        np.exp(sq, out=sq)
+    H = sxx
+    H += syy
+    H -= sxy
+    H -= sxy.T
+    np.fill_diagonal(H, 0.0)
+    return H
+
+
 def _swap_statistics(H, signs):
     """s' H s / (n (n - 1)) for each row s of ``signs``, accumulated in float64."""
     n = H.shape[0]
     prod = signs.astype(H.dtype, copy=False) @ H
     return np.einsum("bi,bi->b", prod, signs, dtype=np.float64) / (n * (n - 1))
+
+
+def _count_exceeding(H, observed, permutations, rng):
+    """How many of ``permutations`` random swap vectors reach the observed statistic."""
+    n = H.shape[0]
+    # a swap and its negation give the same statistic; count rounding-level ties as ties
+    tol = 1e-9 * max(1.0, abs(observed))
+    block = max(1, min(permutations, _BLOCK_BYTES // (2 * n * H.itemsize)))
+    exceed = 0
+    done = 0
+    while done < permutations:
+        size = min(block, permutations - done)
+        signs = rng.choice(np.array([-1.0, 1.0], dtype=H.dtype), size=(size, n))
+        exceed += int((_swap_statistics(H, signs) >= observed - tol).sum())
+        done += size
+    return exceed
+
+
+class PairedKernel:
+    """The Gaussian pair matrix of one set of pairs, built once; tests on subsets slice it.
+
+    ``H_ij = k(x_i,x_j) + k(y_i,y_j) - k(x_i,y_j) - k(y_i,x_j)`` (Gretton et al., JMLR 13,
+    2012, the paired form of their unbiased MMD^2) over all pairs, with one bandwidth
+    (the median heuristic on all pooled pairs unless given). The statistic of a subset of
+    pairs only needs the rows and columns of that subset, so every subgroup of a
+    breakdown is tested on a slice of the one matrix instead of a new kernel. The
+    bandwidth depends on the pooled clean and cluttered rows only, which a swap within
+    a pair leaves unchanged, so each subset's permutation test stays exact.
+
+    Parameters
+    ----------
+    clean, cluttered : ndarray of shape (n_pairs, d)
+        Paired features; row i of each is the same scene.
+    bandwidth : float, optional
+        Kernel length scale; default :func:`median_bandwidth` of all pooled rows.
+    max_pairs : int, default=4000
+        Largest matrix kept: with more pairs no whole matrix is built and each test
+        builds the matrix of its own (subsampled) pairs.
+
+    Raises
+    ------
+    InvarianceError
+        Bad shapes, NaN rows, or features identical everywhere (no bandwidth).
+    """
+
+    def __init__(self, clean, cluttered, *, bandwidth=None, max_pairs=MAX_PAIRS):
+        self.max_pairs = _check_int("max_pairs", max_pairs, MIN_PAIRS)
+        self.clean, self.cluttered = _validate_pairs(clean, cluttered, min_pairs=2)
+        self.n_pairs = n = self.clean.shape[0]
+        self._whole = None
+        if n > self.max_pairs:
+            if bandwidth is None:
+                bandwidth = median_bandwidth(np.vstack([self.clean, self.cluttered]))
+            self.bandwidth = _check_bandwidth(bandwidth)
+            return
+        # the kernel's squared distances also give the median heuristic: one pass
+        dtype = np.dtype(np.float64 if n <= FLOAT64_MAX_PAIRS else np.float32)
+        blocks, norms, scale = _squared_blocks(self.clean, self.cluttered, dtype)
+        if bandwidth is None:
+            bandwidth = _block_median(blocks, norms, scale)
+        self.bandwidth = _check_bandwidth(bandwidth)
+        self._whole = _pair_from_squared(blocks, scale, self.bandwidth)
+
+    def _matrix(self, rows):
+        dtype = np.float64 if rows.size <= FLOAT64_MAX_PAIRS else np.float32
+        return _pair_matrix(self.clean[rows], self.cluttered[rows], self.bandwidth, dtype)
+
+    def _sub_matrix(self, rows):
+        if self._whole is None:
+            return self._matrix(rows)
+        if rows.size == self.n_pairs:
+            return self._whole
+        return self._whole[np.ix_(rows, rows)]
+
+    def test(self, indices=None, *, permutations=1000, seed=0):
+        """Paired permutation test of MMD^2 on the pairs ``indices`` (default all).
+
+        Parameters
+        ----------
+        indices : array of int, optional
+            Pairs tested, e.g. one subgroup of a breakdown.
+        permutations : int, default=1000
+            Number B of random swap vectors.
+        seed : int, default=0
+            Seed of the pair subsample (above ``max_pairs``) and of the swap vectors.
+
+        Returns
+        -------
+        dict
+            As :func:`paired_permutation_test`.
+        """
+        permutations = _check_int("permutations", permutations, 1)
+        _check_int("seed", seed, 0)
+        rows = np.arange(self.n_pairs) if indices is None else np.asarray(indices, dtype=np.intp)
+        if rows.ndim != 1 or rows.size < MIN_PAIRS:
+            raise InvarianceError(
+                f"only {rows.size} pairs; the MMD permutation test needs at least {MIN_PAIRS}"
+            )
+        rng = np.random.default_rng(seed)
+        method = "exact"
+        if rows.size > self.max_pairs:
+            rows = rows[np.sort(rng.choice(rows.size, size=self.max_pairs, replace=False))]
+            method = f"subsample of {rows.size} pairs"
+        H = self._sub_matrix(rows)
+        observed = float(_swap_statistics(H, np.ones((1, rows.size)))[0])
+        exceed = _count_exceeding(H, observed, permutations, rng)
+        return {
+            "mmd2": observed,
+            "p_value": (exceed + 1) / (permutations + 1),
+            "permutations": permutations,
+            "bandwidth": self.bandwidth,
+            "method": method,
+            "pairs_used": int(rows.size),
+        }
 
 
 def paired_permutation_test(
@@ -187,7 +372,9 @@ def paired_permutation_test(
     of a scene are exchangeable, so flipping the sign vector s in {-1, +1}^n of the
     paired statistic s' H s / (n (n - 1)) draws from the null distribution (Gretton
     et al., JMLR 13, 2012; paired form of their U-statistic). s = 1 gives the observed
-    MMD^2 (``mmd2_unbiased(..., paired=True)``).
+    MMD^2 (``mmd2_unbiased(..., paired=True)``). The p-value counts the observed
+    statistic among the B + 1 (Phipson & Smyth, Stat. Appl. Genet. Mol. Biol. 9, 2010),
+    so it is never 0 and P(p <= alpha) <= alpha under the null.
 
     Parameters
     ----------
@@ -198,7 +385,7 @@ def paired_permutation_test(
     seed : int, default=0
         Seed of the swap vectors and of the pair subsample.
     bandwidth : float, optional
-        Kernel length scale; default the median heuristic on the pooled pairs used.
+        Kernel length scale; default the median heuristic on all pooled pairs.
     max_pairs : int, default=4000
         Above this many pairs, a seeded random subsample of ``max_pairs`` pairs is
         tested (reported in ``method``) to bound memory.
@@ -214,35 +401,7 @@ def paired_permutation_test(
     max_pairs = _check_int("max_pairs", max_pairs, MIN_PAIRS)
     _check_int("seed", seed, 0)
     clean, cluttered = _validate_pairs(clean, cluttered, min_pairs=MIN_PAIRS)
-    rng = np.random.default_rng(seed)
-    n = clean.shape[0]
-    method = "exact"
-    if n > max_pairs:
-        keep = np.sort(rng.choice(n, size=max_pairs, replace=False))
-        clean, cluttered = clean[keep], cluttered[keep]
-        n = max_pairs
-        method = f"subsample of {n} pairs"
-    if bandwidth is None:
-        bandwidth = median_bandwidth(np.vstack([clean, cluttered]))
-    bandwidth = _check_bandwidth(bandwidth)
-    dtype = np.float64 if n <= FLOAT64_MAX_PAIRS else np.float32
-    H = _pair_matrix(clean, cluttered, bandwidth, dtype)
-    observed = float(_swap_statistics(H, np.ones((1, n)))[0])
-    # a swap and its negation give the same statistic; count rounding-level ties as ties
-    tol = 1e-9 * max(1.0, abs(observed))
-    block = max(1, min(permutations, _BLOCK_BYTES // (2 * n * H.itemsize)))
-    exceed = 0
-    done = 0
-    while done < permutations:
-        size = min(block, permutations - done)
-        signs = rng.choice(np.array([-1.0, 1.0], dtype=H.dtype), size=(size, n))
-        exceed += int((_swap_statistics(H, signs) >= observed - tol).sum())
-        done += size
-    return {
-        "mmd2": observed,
-        "p_value": (exceed + 1) / (permutations + 1),
-        "permutations": permutations,
-        "bandwidth": bandwidth,
-        "method": method,
-        "pairs_used": n,
-    }
+    if bandwidth is not None:
+        bandwidth = _check_bandwidth(bandwidth)
+    kernel = PairedKernel(clean, cluttered, bandwidth=bandwidth, max_pairs=max_pairs)
+    return kernel.test(permutations=permutations, seed=seed)
