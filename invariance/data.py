@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import csv
 import hashlib
+import os
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -25,6 +26,14 @@ from .errors import InvarianceError
 IMAGE_EXTENSIONS = frozenset({".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff", ".webp", ".gif"})
 LABELS_FILE = "labels.csv"
 _MAX_LISTED = 10  # names shown in an error before "and N more"
+# Key of ``Image.info`` where :func:`load_rgb` records the file an image came from, so
+# later steps (preprocessing) can name it in their messages.
+IMAGE_SOURCE_KEY = "invariance_source"
+# A text column is an identifier (a name or id), not a task, when more than half of its
+# labelled rows hold a value no other row has: a probe cannot learn a class it sees once,
+# and scores 0 on clean and cluttered alike, which would read as "no gap". Checked from 10
+# labelled rows, the fewest a probe is fitted on (metrics.probe.MIN_LABELLED_PAIRS).
+_IDENTIFIER_MIN_ROWS = 10
 
 
 @dataclass
@@ -39,11 +48,18 @@ class LabelTable:
         ``"regression"`` or ``"classification"`` for each task column.
     factors : dict of str to ndarray
         ``factor_*`` and ``level`` columns as arrays of ``str`` (values are groups).
+    identifiers : list of str
+        Text columns left out of the probes because their values are (nearly) all
+        distinct: names or ids, not classes (see :data:`_IDENTIFIER_MIN_ROWS`).
+    notes : list of str
+        Sentences for the result's warnings (one per identifier column).
     """
 
     tasks: dict[str, np.ndarray] = field(default_factory=dict)
     task_kinds: dict[str, str] = field(default_factory=dict)
     factors: dict[str, np.ndarray] = field(default_factory=dict)
+    identifiers: list[str] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
 
     def subset(self, indices) -> "LabelTable":
         idx = np.asarray(indices, dtype=int)
@@ -51,6 +67,8 @@ class LabelTable:
             tasks={k: v[idx] for k, v in self.tasks.items()},
             task_kinds=dict(self.task_kinds),
             factors={k: v[idx] for k, v in self.factors.items()},
+            identifiers=list(self.identifiers),
+            notes=list(self.notes),
         )
 
 
@@ -109,10 +127,13 @@ class PairSet:
 
     def describe(self) -> dict:
         """JSON-able summary for the result file."""
-        info = {"path": str(self.root) if self.root else None, "pairs": len(self)}
+        # Absolute, so a report rendered from another working folder still finds the images.
+        info = {"path": os.path.abspath(self.root) if self.root else None, "pairs": len(self)}
         if self.labels is not None:
             info["tasks"] = dict(self.labels.task_kinds)
             info["factors"] = sorted(self.labels.factors)
+            if self.labels.identifiers:
+                info["identifier_columns"] = list(self.labels.identifiers)
         if self.skipped:
             info["skipped_unpaired"] = len(self.skipped)
         return info
@@ -125,8 +146,13 @@ def _file_digest(path: Path) -> bytes:
         raise InvarianceError(f"cannot read image {path}: {exc.strerror or exc}; check the file exists and is readable") from None
 
 
+def _shown(name: str) -> str:
+    """A name as typed, or quoted with escapes when it holds a line break or another control character."""
+    return repr(name) if any(ord(c) < 32 or 127 <= ord(c) < 160 for c in name) else name
+
+
 def _listing(names: Sequence[str]) -> str:
-    shown = ", ".join(names[:_MAX_LISTED])
+    shown = ", ".join(_shown(str(n)) for n in names[:_MAX_LISTED])
     more = len(names) - _MAX_LISTED
     return shown + (f" and {more} more" if more > 0 else "")
 
@@ -253,6 +279,10 @@ def _read_csv(path: Path) -> tuple[list[str], list[tuple[int, list[str]]]]:
         raise InvarianceError(f"cannot read {path}: {exc}; check it is a readable CSV file") from None
     if not header:
         raise InvarianceError(f"{path} is empty; it needs a header row (file,...) and one row per pair")
+    twice = sorted({h for h in header if header.count(h) > 1})
+    if twice:
+        raise InvarianceError(f"{path}: column {twice[0]!r} appears more than once in the header; "
+                              "give each column its own name")
     for line_no, row in rows:
         if len(row) != len(header):
             raise InvarianceError(
@@ -307,10 +337,31 @@ def _label_table(path: Path, columns: Sequence[str], rows, line_numbers=None) ->
         elif _looks_numeric(values):
             table.tasks[col] = _parse_numeric(path, col, values, lines)
             table.task_kinds[col] = "regression"
+        elif _is_identifier(values):
+            table.identifiers.append(col)
+            table.notes.append(_identifier_note(path, col))
+            warnings.warn(table.notes[-1], UserWarning, stacklevel=2)
         else:
             table.tasks[col] = np.array(values, dtype=object).astype(str)
             table.task_kinds[col] = "classification"
     return table
+
+
+def _is_identifier(values: Sequence[str]) -> bool:
+    """More than half of the labelled rows hold a value no other row has (see _IDENTIFIER_MIN_ROWS)."""
+    filled = [v for v in values if v != "" and v.lower() != "nan"]
+    if len(filled) < _IDENTIFIER_MIN_ROWS:
+        return False
+    counts: dict[str, int] = {}
+    for v in filled:
+        counts[v] = counts.get(v, 0) + 1
+    return 2 * sum(1 for c in counts.values() if c == 1) > len(filled)
+
+
+def _identifier_note(path: Path, col: str) -> str:
+    return (f"{path}: column {col!r} is not probed: more than half of its rows hold a value no other row has, "
+            "so it names or numbers the scenes instead of sorting them into classes; to probe it, give it classes "
+            "that several scenes share")
 
 
 def _to_float(value: str) -> float | None:
@@ -340,7 +391,8 @@ def _parse_numeric(path: Path, col: str, values: Sequence[str], lines: Sequence[
         if parsed is None:
             shown = repr(v) if v else "an empty value"
             raise InvarianceError(
-                f"{path} line {line_no}, column '{col}': {shown} is not a finite number in a numeric column; fix the value"
+                f"{path} line {line_no}, column {col!r}: {shown} is not a finite number in a numeric column; "
+                "fix the value"
             )
         out[i] = parsed
     return out
@@ -359,8 +411,9 @@ def load_rgb(path) -> Image.Image:
             warnings.simplefilter("error", Image.DecompressionBombWarning)
             with Image.open(path) as im:
                 im.load()
-                im = ImageOps.exif_transpose(im)
-                return _to_rgb(im)
+                rgb = _to_rgb(ImageOps.exif_transpose(im))
+                rgb.info[IMAGE_SOURCE_KEY] = str(path)
+                return rgb
     except (Image.DecompressionBombError, Image.DecompressionBombWarning):
         raise InvarianceError(
             f"{path} has more pixels than the safety limit ({Image.MAX_IMAGE_PIXELS:,}); "

@@ -13,7 +13,7 @@ import time
 from pathlib import Path
 
 from . import SAFETY_CAUTION
-from ._io import atomic_write_json
+from ._io import atomic_write_json, dumps_json, write_outputs_together
 from .errors import InvarianceError
 from .options import AlignmentOptions, EncoderEntry, ExtractionOptions, ScoringOptions
 from .progress import as_reporter
@@ -67,7 +67,11 @@ def run_demo(out_dir="demo_report", *, progress=True, cache_dir=None, scoring: S
     reporter = as_reporter(progress)
     echo = reporter.note
     out_dir = Path(out_dir)
-    out_dir.mkdir(parents=True, exist_ok=True)
+    try:
+        out_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InvarianceError(f"cannot make the demo folder {out_dir} ({exc.strerror or exc}); "
+                              "choose another out_dir (--out)") from None
     started = time.perf_counter()
     sample = _sample_set(out_dir, echo)
 
@@ -89,12 +93,13 @@ def run_demo(out_dir="demo_report", *, progress=True, cache_dir=None, scoring: S
                                            scoring=scoring, progress=reporter)
     aligned_result = comparison["results"][-1]
     aligned_result["alignment"] = aligned["alignment"]
-    atomic_write_json(out_dir / "comparison.json", comparison)
+    from .report import render_report
 
-    from .report import write_report
-
-    report = write_report(out_dir / "report.html", comparison["results"], failures=comparison["failures"],
-                          warnings=comparison["warnings"], title="invariance demo: parts-sorting workbench")
+    page = render_report(comparison["results"], failures=comparison["failures"], warnings=comparison["warnings"],
+                         title="invariance demo: parts-sorting workbench")
+    # The comparison and its report reach the folder together, or neither does.
+    report = write_outputs_together([(out_dir / "comparison.json", dumps_json(comparison) + "\n"),
+                                     (out_dir / "report.html", page)])[1]
     return _summary(comparison, report, time.perf_counter() - started)
 
 
@@ -118,7 +123,11 @@ def _replace_dir(path: Path) -> None:
     if path.exists():
         if not path.is_dir():
             raise InvarianceError(f"{path} exists and is not a folder; remove it or choose another out_dir (--out)")
-        shutil.rmtree(path)
+        try:
+            shutil.rmtree(path)
+        except OSError as exc:
+            raise InvarianceError(f"cannot replace {path} ({exc.strerror or exc}); remove it or choose another "
+                                  "out_dir (--out)") from None
 
 
 def _summary(comparison: dict, report: Path, seconds: float) -> list[str]:

@@ -19,6 +19,10 @@ from invariance.errors import InvarianceError
 RESULT_SCHEMA = "invariance.result/1"
 COMPARISON_SCHEMA = "invariance.comparison/1"
 
+# Largest result file read: a comparison of ten encoders on 50,000 pairs is about 40 MB, so
+# 256 MiB leaves room while keeping a hostile file from filling the memory.
+MAX_RESULT_BYTES = 256 * 2**20
+
 
 def load_result_files(paths: Iterable[str | os.PathLike]) -> list[dict]:
     """Read result and comparison files and return the results they hold, in order.
@@ -64,12 +68,13 @@ def load_as_comparison(paths: Iterable[str | os.PathLike]) -> dict:
     for path in paths:
         data = _read_json(Path(path))
         source = str(path)
-        if data.get("schema") == COMPARISON_SCHEMA:
-            results.extend(_comparison_results(data, source))
+        if isinstance(data, dict) and data.get("schema") == COMPARISON_SCHEMA:
+            results.extend(_check_values(r, f"{source} (result {i + 1})")
+                           for i, r in enumerate(_comparison_results(data, source)))
             failures.extend(_comparison_failures(data, source))
-            warnings.extend(str(w) for w in data.get("warnings") or [])
+            warnings.extend(_strings(data.get("warnings"), "warnings", source))
         else:
-            results.append(validate_result(data, source=source))
+            results.append(_check_values(validate_result(data, source=source), source))
     return make_comparison(results, failures=failures, warnings=warnings)
 
 
@@ -233,15 +238,38 @@ def metric_value(metrics: dict, metric: str, key: str | None = None) -> float | 
     return float(value)
 
 
-def _read_json(path: Path) -> dict:
+def _refuse_constant(name: str):
+    raise ValueError(f"{name} is not a JSON number")
+
+
+def _read_json(path: Path):
+    """The parsed JSON value of ``path``: any JSON value, checked by the caller."""
     if not path.is_file():
         raise InvarianceError(f"{path}: file not found; pass a RESULT.json written by score, align or compare")
+    fix = "pass a RESULT.json written by score, align or compare"
     try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise InvarianceError(
-            f"{path}: not valid JSON ({exc.__class__.__name__}); pass a RESULT.json written by score, align or compare"
-        ) from None
+        size = path.stat().st_size
+        if size > MAX_RESULT_BYTES:
+            raise InvarianceError(f"{path}: {size:,} bytes is more than a result file holds "
+                                  f"(limit {MAX_RESULT_BYTES:,}); {fix}")
+        text = path.read_text(encoding="utf-8")
+        # NaN and Infinity are not JSON (RFC 8259, section 6), although Python's parser reads them.
+        return json.loads(text, parse_constant=_refuse_constant)
+    except OSError as exc:
+        raise InvarianceError(f"{path}: cannot read it ({exc.strerror or exc}); {fix}") from None
+    except (UnicodeDecodeError, ValueError, RecursionError) as exc:
+        # ValueError covers JSONDecodeError, NaN/Infinity and integers too long to convert
+        # (Python's int max-str-digits guard); RecursionError, arrays nested past the stack.
+        raise InvarianceError(f"{path}: not valid JSON ({_short_reason(exc)}); {fix}") from None
+
+
+def _short_reason(exc: BaseException) -> str:
+    if isinstance(exc, RecursionError):
+        return "nested too deeply"
+    text = str(exc).splitlines()[0] if str(exc) else ""
+    if "integer string conversion" in text:  # Python's int max-str-digits guard
+        return "a number has thousands of digits"
+    return f"{type(exc).__name__}: {text[:120]}" if text else type(exc).__name__
 
 
 def _comparison_results(data: dict, source: str) -> list[dict]:
@@ -267,3 +295,148 @@ def _normalise_failure(failure: object) -> dict:
         "name": str(failure.get("name") or spec or "unnamed encoder"),
         "error": str(failure.get("error") or "no error message was recorded"),
     }
+
+
+# --------------------------------------------------------------------------- value checks
+#
+# A result file is data from anywhere: every value a later step reads is checked on load,
+# so a hand-edited or hostile file is refused with one line instead of being ranked
+# (an accuracy of 1e300) or shown wrongly (``"warnings": "abc"`` read as three warnings).
+
+_FIX = "re-create the file with score, align or compare"
+_UNIT = (0.0, 1.0)
+_NONNEGATIVE = (0.0, math.inf)
+# Ranges of the documented metric values (docs/design.md, "The metrics object"): accuracies,
+# shares and p-values are proportions; drift and distances are non-negative; linear CKA lies
+# in [0, 1] (Kornblith et al., ICML 2019). A value of another type is left to the report,
+# which shows it as unreadable; a number outside its range would be ranked or read as real.
+_RANGES = {
+    "domain_classifier": {"accuracy": _UNIT, "paired_accuracy": _UNIT, "ci": _UNIT},
+    "paired_drift": {"relative_drift": _NONNEGATIVE, "relative_drift_ci": _NONNEGATIVE,
+                     "typical_distance": _NONNEGATIVE, "pair_retrieval_top1": _UNIT},
+}
+# Rounding slack on range ends: values are computed in floating point (common practice).
+_SLACK = 1e-9
+
+
+def _refuse(source: str, where: str, what: str) -> InvarianceError:
+    return InvarianceError(f"{source}: {where} {what}; {_FIX}")
+
+
+def _strings(value, where: str, source: str) -> list[str]:
+    """``value`` as a list of strings (``None`` is an empty list); anything else is refused."""
+    if value is None:
+        return []
+    if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+        raise _refuse(source, f'"{where}"', "must be a list of sentences")
+    return list(value)
+
+
+def _number(value, where: str, source: str, bounds=(-math.inf, math.inf)) -> None:
+    """A number outside ``bounds`` is refused; other types are the report's to show as unreadable."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        return
+    low, high = bounds
+    if not low - _SLACK <= value <= high + _SLACK:
+        shown = f"{value:.6g}" if isinstance(value, float) else str(value)[:40]
+        raise _refuse(source, where, f"is {shown}, outside [{low:g}, {high:g}]")
+
+
+def _dict(value) -> dict:
+    """``value`` when it is a dict, else an empty one (odd blocks are the report's to show)."""
+    return value if isinstance(value, dict) else {}
+
+
+def _check_finite(value, source: str) -> None:
+    """Every float anywhere in ``value`` is finite (JSON has no NaN; 1e400 parses as inf)."""
+    stack = [value]
+    while stack:
+        item = stack.pop()
+        if isinstance(item, float) and not math.isfinite(item):
+            raise _refuse(source, "a number", f"is {item}, not finite")
+        if isinstance(item, dict):
+            stack.extend(item.values())
+        elif isinstance(item, list):
+            stack.extend(item)
+
+
+def _check_entry(name: str, entry, where: str, source: str) -> None:
+    """One metric of a metrics object: its numbers in their documented ranges."""
+    if not isinstance(entry, dict) or "not_computable" in entry:
+        return
+    for key, value in entry.items():
+        bounds = _UNIT if key.startswith("p_value") else _RANGES.get(name, {}).get(key)
+        if bounds is None or value is None:
+            continue
+        for i, item in enumerate(value if isinstance(value, list) else [value]):
+            _number(item, f"{where}.{key}" + (f"[{i}]" if isinstance(value, list) else ""), source, bounds)
+
+
+def _check_probe(probe, where: str, source: str) -> None:
+    if not isinstance(probe, dict) or "not_computable" in probe:
+        return
+    for label, entry in probe.items():
+        if not isinstance(entry, dict) or "not_computable" in entry:
+            continue
+        # An accuracy is a proportion, so its gap lies in [-1, 1]; R² is at most 1 and unbounded below.
+        accuracy = entry.get("metric") == "accuracy"
+        score = _UNIT if accuracy else (-math.inf, 1.0)
+        bounds = {"clean": score, "cluttered": score, "gap": (-1.0, 1.0) if accuracy else (-math.inf, math.inf)}
+        for key, limits in bounds.items():
+            _number(entry.get(key), f"{where}.{label}.{key}", source, limits)
+
+
+def _check_metrics(metrics, where: str, source: str) -> None:
+    for name, entry in _dict(metrics).items():
+        if name == "probe":
+            _check_probe(entry, f"{where}.probe", source)
+        elif name == "cka" and not isinstance(entry, dict) and entry is not None:
+            _number(entry, f"{where}.cka", source, _UNIT)
+        else:
+            _check_entry(name, entry, f"{where}.{name}", source)
+
+
+def _check_blocks(result: dict, source: str) -> None:
+    """The blocks read for the whole page (data set, environment, gates, pairs) have their types."""
+    for key in ("environment", "gates"):
+        if result.get(key) is not None and not isinstance(result[key], dict):
+            raise _refuse(source, f'"{key}"', f"must be an object, not {type(result[key]).__name__}")
+    if result.get("pairs") is not None and not isinstance(result["pairs"], list):
+        raise _refuse(source, '"pairs"', f"must be a list, not {type(result['pairs']).__name__}")
+    path = result["dataset"].get("path")
+    if path is not None and not isinstance(path, str):
+        raise _refuse(source, "dataset.path", f"must be a folder name, not {type(path).__name__}")
+
+
+def _check_pairs(pairs, source: str) -> None:
+    for i, pair in enumerate(pairs if isinstance(pairs, list) else []):
+        if isinstance(pair, dict) and pair.get("drift") is not None:
+            _number(pair["drift"], f"pairs[{i}].drift", source, _NONNEGATIVE)
+
+
+def _check_nested_metrics(result: dict, source: str) -> None:
+    """The metrics of every layer, every breakdown group and alignment's before and after."""
+    for layer, metrics in _dict(result.get("layers")).items():
+        _check_metrics(metrics, f"layers.{layer}", source)
+    for column, groups in _dict(result.get("breakdowns")).items():
+        for value, group in _dict(groups).items():
+            _check_metrics(_dict(group).get("metrics"), f"breakdowns.{column}.{value}.metrics", source)
+    alignment = _dict(result.get("alignment"))
+    for key in ("before", "after"):
+        _check_metrics(alignment.get(key), f"alignment.{key}", source)
+
+
+def _check_values(result: dict, source: str) -> dict:
+    """``result`` read from a file, after refusing values that would be shown or ranked wrongly.
+
+    Every float must be finite, ``warnings`` a list of sentences, the blocks the report's
+    page reads outside any one encoder's section of the right type, and every documented
+    metric number inside its range.
+    """
+    _check_finite(result, source)
+    _strings(result.get("warnings"), "warnings", source)
+    _check_blocks(result, source)
+    _check_pairs(result.get("pairs"), source)
+    _check_metrics(result["metrics"], "metrics", source)
+    _check_nested_metrics(result, source)
+    return result

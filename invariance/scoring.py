@@ -9,6 +9,7 @@ is ``{"not_computable": reason}`` and no NaN or infinity ever reaches the output
 from __future__ import annotations
 
 import math
+import tokenize
 from pathlib import Path
 
 import numpy as np
@@ -426,7 +427,9 @@ def _check_npy_header(path):
                 raise ValueError(f"unsupported .npy format version {version}")
             shape, _, dtype = read[version](fh)
             offset = fh.tell()
-    except (ValueError, OSError, EOFError, SyntaxError) as err:
+    except (ValueError, OSError, EOFError, SyntaxError, tokenize.TokenError) as err:
+        # The header is a Python literal (NEP 1); an unclosed bracket makes the tokenizer
+        # raise TokenError, which is neither ValueError nor SyntaxError.
         reason = str(err).splitlines()[0] if str(err) else type(err).__name__
         raise InvarianceError(f"{path}: not a readable numeric .npy array ({reason}); save it with numpy.save") from None
     if dtype.hasobject:

@@ -241,3 +241,66 @@ def test_cli_unpaired_exit_1(tmp_path):
 def test_cli_usage_error_exit_2():
     result = CliRunner().invoke(cli, ["score"])
     assert result.exit_code == 2
+
+
+# --------------------------------------------------------------------------- silent wrong results
+
+
+def _ids(n, repeat=1):
+    return "file,part,scene_id\n" + "".join(f"s{i:02d}.png,{'ab'[i % 2]},id{i // repeat}\n" for i in range(n))
+
+
+def test_a_duplicated_header_is_refused_naming_the_column(tmp_path):
+    # csv.DictReader-style reading would keep the last 'y' and drop the first silently.
+    root = _dataset(tmp_path, labels="file,y,part,y\na.png,1,bolt,2\nb.png,2,nut,3\nc.png,3,nut,4\n")
+    with pytest.raises(InvarianceError, match=r"labels.csv: column 'y' appears more than once in the header"):
+        discover_pairs(root)
+
+
+def test_a_text_column_of_distinct_values_is_an_identifier_not_a_task(tmp_path):
+    # Rule (data._IDENTIFIER_MIN_ROWS): with 10 or more labelled rows, a text column in which
+    # more than half the rows hold a value no other row has is an identifier. A probe on it
+    # scores 0 on both views, a gap of 0 that would pass --max-probe-gap.
+    names = [f"s{i:02d}.png" for i in range(12)]
+    root = _dataset(tmp_path, names=names, labels=_ids(12))
+    with pytest.warns(UserWarning, match=r"column 'scene_id' is not probed: more than half of its rows"):
+        pairs = discover_pairs(root)
+    assert set(pairs.labels.tasks) == {"part"} and pairs.labels.identifiers == ["scene_id"]
+    assert pairs.describe()["identifier_columns"] == ["scene_id"] and pairs.labels.notes
+    assert pairs.subset([0, 1]).labels.identifiers == ["scene_id"]
+
+
+def test_classes_shared_by_pairs_of_scenes_stay_a_task(tmp_path):
+    names = [f"s{i:02d}.png" for i in range(12)]
+    root = _dataset(tmp_path, names=names, labels=_ids(12, repeat=2))  # every value twice: no singleton
+    pairs = discover_pairs(root)
+    assert pairs.labels.task_kinds == {"part": "classification", "scene_id": "classification"}
+    # under 10 labelled rows no probe is fitted, so the column is left alone
+    small = _dataset(tmp_path / "small", names=names[:3], labels=_ids(3))
+    assert "scene_id" in discover_pairs(small).labels.tasks
+
+
+def test_an_identifier_column_through_score_features_is_warned_about_on_one_line(tmp_path):
+    rng = np.random.default_rng(0)
+    for name in ("a.npy", "b.npy"):
+        np.save(tmp_path / name, rng.normal(size=(30, 4)))
+    (tmp_path / "l.csv").write_text("file,who\n" + "".join(f"s{i},person{i}\n" for i in range(30)))
+    res = CliRunner().invoke(cli, ["score", "--features", str(tmp_path / "a.npy"), str(tmp_path / "b.npy"),
+                                   "--labels", str(tmp_path / "l.csv"), "--permutations", "20",
+                                   "--max-probe-gap", "0.1"])
+    assert "warning: " in res.stderr and "column 'who' is not probed" in res.stderr
+    assert "probe who" not in res.output and "UserWarning" not in res.output
+
+
+def test_dataset_path_is_stored_absolute(tmp_path, monkeypatch):
+    _dataset(tmp_path / "set")
+    monkeypatch.chdir(tmp_path)
+    described = discover_pairs("set").describe()["path"]
+    assert described == str(tmp_path / "set")
+
+
+def test_load_rgb_records_the_file_for_later_messages(tmp_path):
+    from invariance.data import IMAGE_SOURCE_KEY
+
+    path = _png(tmp_path / "x.png")
+    assert load_rgb(path).info[IMAGE_SOURCE_KEY] == str(path)

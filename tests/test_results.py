@@ -149,3 +149,73 @@ def test_metric_value_refuses_not_computable_and_non_finite():
     metrics["mmd"] = {"not_computable": "fewer than 4 pairs"}
     assert metric_value(metrics, "mmd", "mmd2") is None
     assert metric_value(metrics, "absent", "x") is None
+
+
+# --------------------------------------------------------------------------- hostile result files
+
+
+@pytest.mark.parametrize("text, message", [
+    ("[]", "not an invariance result"),
+    ('"abc"', "not an invariance result"),
+    ("null", "not an invariance result"),
+    ("7" * 5000, r"not valid JSON \(a number has thousands of digits\)"),  # Python's int max-str-digits guard
+    ("[" * 100_000 + "]" * 100_000, r"not valid JSON \(nested too deeply\)"),
+    ('{"schema": NaN}', "NaN is not a JSON number"),  # RFC 8259, section 6: no NaN or Infinity
+    ('{"schema": -Infinity}', "-Infinity is not a JSON number"),
+], ids=["list", "string", "null", "5000-digits", "100000-deep", "nan", "infinity"])
+def test_json_that_is_not_a_result_object_is_one_clear_error(tmp_path, text, message):
+    path = tmp_path / "r.json"
+    path.write_text(text)
+    with pytest.raises(InvarianceError, match=message):
+        load_as_comparison([path])
+
+
+def test_warnings_must_be_a_list_of_sentences(tmp_path):
+    # "warnings": "abc" used to be shown as three warnings, "a", "b" and "c".
+    result = _light(0, "a")
+    result["warnings"] = "abc"
+    with pytest.raises(InvarianceError, match=r'r.json: "warnings" must be a list of sentences'):
+        load_result_files([_write(tmp_path / "r.json", result)])
+    comparison = {"schema": COMPARISON_SCHEMA, "results": [_light(0, "b")], "warnings": "abc"}
+    with pytest.raises(InvarianceError, match=r'"warnings" must be a list'):
+        load_as_comparison([_write(tmp_path / "c.json", comparison)])
+
+
+@pytest.mark.parametrize("where, value, message", [
+    (("domain_classifier", "accuracy"), 1e300, r"accuracy is 1e\+300, outside \[0, 1\]"),
+    (("domain_classifier", "accuracy"), -0.1, r"accuracy is -0.1, outside"),
+    (("domain_classifier", "ci"), [0.2, 1.5], r"ci\[1\] is 1.5"),
+    (("mmd", "p_value"), 1.2, r"mmd.p_value is 1.2"),
+    (("paired_drift", "pair_retrieval_top1"), 3, r"pair_retrieval_top1 is 3"),
+    (("paired_drift", "relative_drift"), -2.0, r"relative_drift is -2"),
+    (("probe", "part"), {"metric": "accuracy", "clean": 0.9, "cluttered": 7.0, "gap": -6.1}, r"part.cluttered is 7"),
+])
+def test_numbers_outside_their_range_are_refused_not_ranked(tmp_path, where, value, message):
+    # Accuracies, shares and p-values are proportions; drift is a ratio of distances (>= 0).
+    result = _light(0, "a")
+    result["metrics"][where[0]][where[1]] = value
+    with pytest.raises(InvarianceError, match=message):
+        load_as_comparison([_write(tmp_path / "r.json", result)])
+
+
+def test_infinite_numbers_are_refused_wherever_they_sit(tmp_path):
+    path = tmp_path / "r.json"
+    path.write_text(json.dumps(_light(0, "a")).replace('"folds": 5', '"folds": 1e999'))  # parses as inf
+    with pytest.raises(InvarianceError, match="is inf, not finite"):
+        load_as_comparison([path])
+
+
+def test_range_checks_reach_layers_breakdowns_and_alignment(tmp_path):
+    result = make_result(seed=1, name="n", spec="python:m:n")
+    layer = next(iter(result["layers"]))
+    result["layers"][layer]["domain_classifier"]["accuracy"] = 9.0
+    with pytest.raises(InvarianceError, match=f"layers.{layer}.domain_classifier.accuracy is 9"):
+        load_as_comparison([_write(tmp_path / "r.json", result)])
+
+
+def test_odd_but_in_range_results_still_load(tmp_path):
+    # Types the report shows as unreadable are left to it; only misleading numbers are refused.
+    result = _light(0, "a")
+    result["metrics"]["mmd"] = {"mmd2": "high", "p_value": None}
+    result["metrics"]["cka"] = {"not_computable": "too few pairs"}
+    assert load_as_comparison([_write(tmp_path / "r.json", result)])["results"][0]["metrics"]["mmd"]["mmd2"] == "high"

@@ -8,9 +8,12 @@ The option groups turn click options into the frozen objects of
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import re
+import signal
 import sys
+import warnings
 from dataclasses import fields
 from pathlib import Path
 
@@ -62,23 +65,53 @@ def usage_error(exc: InvalidParameter) -> click.UsageError:
     return click.UsageError(printable(str(exc).replace(f"{exc.parameter}=", f"{flag} ", 1)))
 
 
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    """A warning as one ``warning: ...`` line on stderr, without the code location."""
+    say(f"warning: {message}", err=True)
+
+
 def handle_errors(func):
-    """Library errors become one line on stderr and the documented exit code."""
+    """Library errors become one line on stderr and the documented exit code; warnings one line each."""
 
     @functools.wraps(func)
     def wrapper(*args, **kwargs):
         try:
-            return func(*args, **kwargs)
+            with warnings.catch_warnings():
+                warnings.showwarning = _show_warning
+                return func(*args, **kwargs)
         except InvalidParameter as exc:
             raise usage_error(exc) from None
         except InvarianceError as exc:
-            say(f"error: {exc}", err=True)
+            # one line, even when a file name in the message holds a line break
+            say("error: " + str(exc).replace("\r", "\\r").replace("\n", "\\n"), err=True)
             sys.exit(exc.exit_code)
         except KeyboardInterrupt:
             say("interrupted; nothing was written half-way", err=True)
             sys.exit(130)
 
     return wrapper
+
+
+@contextlib.contextmanager
+def terminate_as_interrupt():
+    """Inside the block, SIGTERM (``kill``, a job scheduler's stop) acts as Ctrl-C.
+
+    Python ends on SIGTERM without unwinding, so a folder being built would stay behind as
+    a hidden ``.partial`` sibling; as a ``KeyboardInterrupt`` its cleanup runs and the
+    command exits 130 with its usual message.
+    """
+    def interrupt(signum, frame):
+        raise KeyboardInterrupt
+
+    try:
+        previous = signal.signal(signal.SIGTERM, interrupt)
+    except ValueError:  # not the main thread (an embedding application): leave its handling alone
+        yield
+        return
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
 
 
 def _option_group(target: str, options: list, build):
@@ -217,8 +250,25 @@ def report_option(func):
                         help="Write an HTML report here.")(func)
 
 
+def check_spec(ctx, param, value):
+    """Click callback: an encoder spec of an unknown form is a usage error (exit 2).
+
+    Only the form is checked here; whether its file or module exists is the loader's to say.
+    """
+    if value is None:
+        return value
+    from ..encoders.specs import _split_spec
+
+    for spec in (value,) if isinstance(value, str) else value:
+        try:
+            _split_spec(spec)
+        except InvarianceError as exc:
+            raise click.BadParameter(printable(exc)) from None
+    return value
+
+
 def encoder_option(func):
-    return click.option("--encoder", "spec", help=ENCODER_HELP)(func)
+    return click.option("--encoder", "spec", help=ENCODER_HELP, callback=check_spec)(func)
 
 
 def weights_option(func):
@@ -253,20 +303,51 @@ def check_outputs(outputs: dict, *, data=None, specs=(), files=()):
 
 
 def write_result_outputs(result, *, json_path=None, report_path=None, drift_csv=None, tsne=False):
-    """The result JSON, the per-pair drift CSV and the HTML report, each written atomically."""
-    from .._io import atomic_write_json, atomic_write_text
+    """The result JSON, the per-pair drift CSV and the HTML report, written together.
 
+    Everything is rendered first and then moved into place at once
+    (:func:`invariance._io.write_outputs_together`): a report that fails to render, or a
+    disk that fills up, leaves none of them rather than a JSON without its report.
+    """
+    outputs = []
     if json_path:
-        atomic_write_json(json_path, result)
-        say(f"result JSON: {json_path}")
+        outputs.append((json_path, _json_text(result), "result JSON"))
     if drift_csv:
-        atomic_write_text(drift_csv, drift_table(result.get("pairs", [])))
-        say(f"per-pair drift: {drift_csv}")
+        outputs.append((drift_csv, drift_table(result.get("pairs", [])), "per-pair drift"))
     if report_path:
-        from ..report import write_report
+        outputs.append((report_path, _report_page([result], tsne=tsne), "report"))
+    _write_together(outputs)
 
-        write_report(report_path, [result], tsne=tsne)
-        say(f"report: {report_path}")
+
+def write_comparison_outputs(comparison, *, json_path=None, report_path=None, tsne=False):
+    """The comparison JSON and the HTML report of ``compare``, written together (all or none)."""
+    outputs = []
+    if json_path:
+        outputs.append((json_path, _json_text(comparison), "comparison JSON"))
+    if report_path:
+        outputs.append((report_path, _report_page(comparison["results"], failures=comparison["failures"],
+                                                  warnings=comparison["warnings"], tsne=tsne), "report"))
+    _write_together(outputs)
+
+
+def _json_text(data) -> str:
+    from .._io import dumps_json
+
+    return dumps_json(data) + "\n"
+
+
+def _report_page(results, **kwargs) -> str:
+    from ..report import render_report
+
+    return render_report(results, **kwargs)
+
+
+def _write_together(outputs) -> None:
+    from .._io import write_outputs_together
+
+    write_outputs_together([(path, content) for path, content, _ in outputs])
+    for path, _, what in outputs:
+        say(f"{what}: {path}")
 
 
 def _inert_cell(text: str) -> str:

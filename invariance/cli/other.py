@@ -6,15 +6,16 @@ from pathlib import Path
 
 import click
 
-from ._shared import (ENCODER_HELP, check_outputs, handle_errors, quiet_option, say, trust_code_option,
-                      weights_option)
+from ..errors import InvarianceError
+from ._shared import (ENCODER_HELP, check_outputs, check_spec, handle_errors, printable, quiet_option, say,
+                      terminate_as_interrupt, trust_code_option, weights_option)
 
 
 @click.command()
 @click.argument("out_dir", type=click.Path(file_okay=False, path_type=Path))
 @click.option("--pairs", type=click.IntRange(1, 1_000_000), default=200, show_default=True, help="Number of scenes.")
 @click.option("--size", type=click.IntRange(32, 1024), default=128, show_default=True, help="Image side in pixels.")
-@click.option("--seed", type=int, default=0, show_default=True, help="Same seed, byte-identical files.")
+@click.option("--seed", type=click.IntRange(0), default=0, show_default=True, help="Same seed, byte-identical files.")
 @click.option("--factors", default="surface,distractors,lighting", show_default=True,
               help="Comma-separated clutter factors that may be active: surface, distractors, lighting.")
 @click.option("--level", type=click.IntRange(0, 3), default=None,
@@ -31,16 +32,21 @@ def scenes(out_dir, pairs, size, seed, factors, level, quiet):
     """
     from ..progress import as_reporter
     from ..scenes import generate_scenes
+    from ..scenes.params import _check_params
 
     factor_tuple = tuple(f.strip() for f in factors.split(",") if f.strip())
-    with as_reporter(not quiet).bar(pairs, "scenes") as bar:
+    try:  # --size and --level are checked by click; what is left to refuse is --factors
+        _check_params(size, factor_tuple, level)
+    except InvarianceError as exc:
+        raise click.BadParameter(printable(exc), param_hint="'--factors'") from None
+    with terminate_as_interrupt(), as_reporter(not quiet).bar(pairs, "scenes") as bar:
         out = generate_scenes(out_dir, pairs=pairs, size=size, seed=seed, factors=factor_tuple, level=level,
                               progress=lambda n=1: bar.update(1))
     say(f"wrote {pairs} pairs to {out} (clean/, cluttered/, labels.csv)")
 
 
 @click.command()
-@click.option("--encoder", "spec", required=True, help=ENCODER_HELP)
+@click.option("--encoder", "spec", required=True, help=ENCODER_HELP, callback=check_spec)
 @weights_option
 @click.option("--device", type=click.Choice(["auto", "cpu", "cuda"]), default="cpu", show_default=True,
               help="Where the encoder is built.")
@@ -93,7 +99,9 @@ def demo(out_dir, quiet):
     """The whole job on the bundled sample scenes: score, align, compare, report."""
     from ..demo import run_demo
 
-    for line in run_demo(out_dir, progress=not quiet):
+    with terminate_as_interrupt():
+        lines = run_demo(out_dir, progress=not quiet)
+    for line in lines:
         say(line)
 
 

@@ -20,10 +20,15 @@ from pathlib import Path
 import numpy as np
 
 from invariance._io import atomic_write_bytes
+from invariance.errors import InvarianceError
 
 from .weights import _state_sha256
 
 FORMAT = "invariance.features/1"
+
+# Cache folders whose write already failed in this process: the cache only saves time, so
+# a full or read-only volume is said once and the run goes on without it.
+_UNWRITABLE: set[str] = set()
 
 
 def cache_key(parts: dict) -> str:
@@ -69,8 +74,8 @@ def array_checksum(clean: np.ndarray, cluttered: np.ndarray) -> str:
     return digest.hexdigest()
 
 
-def store(cache_dir, key: str, clean: np.ndarray, cluttered: np.ndarray, header: dict) -> Path:
-    """Write one entry atomically.
+def store(cache_dir, key: str, clean: np.ndarray, cluttered: np.ndarray, header: dict) -> Path | None:
+    """Write one entry atomically; a cache that cannot be written is warned about once and skipped.
 
     Parameters
     ----------
@@ -84,8 +89,9 @@ def store(cache_dir, key: str, clean: np.ndarray, cluttered: np.ndarray, header:
 
     Returns
     -------
-    Path
-        The entry written.
+    Path or None
+        The entry written; ``None`` when the folder cannot take it (full disk, read-only,
+        a file in the way): the features are still returned by the caller, only not kept.
     """
     clean = np.ascontiguousarray(clean, dtype=np.float32)
     cluttered = np.ascontiguousarray(cluttered, dtype=np.float32)
@@ -99,7 +105,16 @@ def store(cache_dir, key: str, clean: np.ndarray, cluttered: np.ndarray, header:
     meta = np.frombuffer(json.dumps(full, sort_keys=True).encode("utf-8"), dtype=np.uint8)
     buf = io.BytesIO()
     np.savez(buf, clean=clean, cluttered=cluttered, header=meta)
-    return atomic_write_bytes(entry_path(cache_dir, key), buf.getvalue())
+    try:
+        return atomic_write_bytes(entry_path(cache_dir, key), buf.getvalue())
+    except (InvarianceError, OSError) as exc:
+        if str(cache_dir) not in _UNWRITABLE:
+            _UNWRITABLE.add(str(cache_dir))
+            cause = exc if isinstance(exc, OSError) else exc.__context__
+            reason = getattr(cause, "strerror", None) or str(exc)
+            warnings.warn(f"feature cache {cache_dir} cannot be written ({reason}); the run goes on without "
+                          "keeping features; free some space or pass another cache_dir", RuntimeWarning, stacklevel=2)
+        return None
 
 
 def load(cache_dir, key: str, *, rows: int, content_hash: str):

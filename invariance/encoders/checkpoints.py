@@ -75,18 +75,30 @@ def _load_checkpoint(spec: str, rest: str, weights, trusted_code=()) -> Encoder:
     if not isinstance(ckpt, dict) or ckpt.get("format") != CHECKPOINT_FORMAT:
         raise InvarianceError(f"{path} is not an invariance checkpoint ({CHECKPOINT_FORMAT}); {_WRITE_IT}")
     _check_trusted(path, ckpt.get("source_spec"), trusted_code)
+    # Everything read from the file is checked before the source is rebuilt (cheap first).
+    preprocess = Preprocess.from_description(ckpt.get("preprocess"), source=f"checkpoint {path}")
+    state = _stored_state(path, ckpt.get("state_dict"))
     base = _rebuild_source(path, ckpt)
     if base.arch != ckpt.get("arch"):
         raise InvarianceError(
             f"checkpoint {path} was saved from architecture {ckpt.get('arch')!r} but its source "
             f"{ckpt['source_spec']} now builds {base.arch!r}; restore the source encoder"
         )
-    _load_state(base.module, ckpt["state_dict"], source=str(path), target=ckpt["source_spec"])
+    _load_state(base.module, state, source=str(path), target=ckpt["source_spec"])
     return Encoder(
-        spec=spec, module=base.module.eval(), preprocess=Preprocess(**ckpt["preprocess"]),
+        spec=spec, module=base.module.eval(), preprocess=preprocess,
         weights_sha256=_file_sha256(path), arch=base.arch, device=torch.device("cpu"), weights=str(path),
         kind="checkpoint", layout=base.layout, source=dict(base.source), code_sha256=base.code_sha256,
     )
+
+
+def _stored_state(path: Path, state) -> dict:
+    """The checkpoint's ``state_dict``: a dict of tensors named by strings."""
+    if not isinstance(state, dict) or not all(isinstance(k, str) and isinstance(v, torch.Tensor)
+                                              for k, v in state.items()):
+        got = {type(None): "none", dict: "a dict holding other things"}.get(type(state), type(state).__name__)
+        raise InvarianceError(f"checkpoint {path} holds no state_dict of named tensors (found {got}); {_WRITE_IT}")
+    return state
 
 
 # The package's own modules (the demo encoders) are not foreign code.

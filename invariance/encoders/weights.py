@@ -80,7 +80,7 @@ def _read_state_dict(path: Path) -> dict:
     for wrapper in ("state_dict", "model"):
         if isinstance(obj, dict) and isinstance(obj.get(wrapper), dict):
             obj = obj[wrapper]
-    if not isinstance(obj, dict) or not all(isinstance(v, torch.Tensor) for v in obj.values()):
+    if not isinstance(obj, dict) or not all(isinstance(k, str) and isinstance(v, torch.Tensor) for k, v in obj.items()):
         raise InvarianceError(f"weights file {path} holds no state_dict of tensors; save model.state_dict()")
     # nn.DataParallel / DistributedDataParallel prefix every key with "module." (common practice).
     if obj and all(k.startswith("module.") for k in obj):
@@ -110,4 +110,8 @@ def _load_state(module: torch.nn.Module, state: dict, *, source: str, target: st
             f"weights {source} do not fit {target}: {'; '.join(problems)}; "
             "check that the file was saved from this architecture"
         )
-    module.load_state_dict(state, strict=True)
+    try:
+        module.load_state_dict(state, strict=True)
+    except (RuntimeError, TypeError, ValueError) as exc:  # e.g. a tensor type that cannot be copied in
+        raise InvarianceError(f"weights {source} do not fit {target} ({_first_line(exc)}); "
+                              "check that the file was saved from this architecture") from None

@@ -34,7 +34,7 @@ from typing import Callable, Sequence
 import numpy as np
 from PIL import Image
 
-from invariance._io import atomic_directory
+from invariance._io import atomic_directory, write_new_file
 from invariance.errors import InvarianceError
 
 from .params import FACTORS, _check_params, _check_run
@@ -141,9 +141,9 @@ def generate_scenes(
             *images, labels = render_pair(pair_rng(seed, i), size, factors, level)
             name = f"scene_{i:0{width}d}.png"
             for view, image in zip(_VIEWS, images):
-                (tmp / view / name).write_bytes(_png_bytes(image))
+                write_new_file(tmp / view / name, _png_bytes(image))
             rows.append(_csv_row(name, labels))
             if progress is not None:
                 progress(i + 1)
-        (tmp / "labels.csv").write_text(_csv_text(rows), encoding="utf-8")
+        write_new_file(tmp / "labels.csv", _csv_text(rows).encode("utf-8"))
     return out
