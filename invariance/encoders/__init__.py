@@ -32,13 +32,40 @@ module-building forms), :mod:`~.checkpoints`, :mod:`~.preprocess`, :mod:`~.weigh
 :mod:`~.cache` (the feature cache).
 """
 
-from .checkpoints import CHECKPOINT_FORMAT, save_checkpoint
-from .encoder import Encoder, resolve_device
-from .extraction import DEFAULT_NUM_WORKERS, extract_features
-from .loaders import RANDOM_INIT_SEED
-from .preprocess import DEFAULT_CROP, DEFAULT_RESIZE, IMAGENET_MEAN, IMAGENET_STD, Preprocess
-from .specs import load_encoder
-from .taps import OUTPUT_KEY, available_layers
+import importlib
+
+# Where each public name lives. Imported on first use (PEP 562), so that the feature cache
+# and the request index can be read without importing torch.
+_PUBLIC = {
+    "CHECKPOINT_FORMAT": "checkpoints",
+    "save_checkpoint": "checkpoints",
+    "Encoder": "encoder",
+    "resolve_device": "encoder",
+    "DEFAULT_NUM_WORKERS": "extraction",
+    "extract_features": "extraction",
+    "RANDOM_INIT_SEED": "loaders",
+    "DEFAULT_CROP": "preprocess",
+    "DEFAULT_RESIZE": "preprocess",
+    "IMAGENET_MEAN": "preprocess",
+    "IMAGENET_STD": "preprocess",
+    "Preprocess": "preprocess",
+    "load_encoder": "specs",
+    "OUTPUT_KEY": "taps",
+    "available_layers": "taps",
+}
+
+
+def __getattr__(name):
+    if name in _PUBLIC:
+        value = getattr(importlib.import_module(f".{_PUBLIC[name]}", __name__), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted([*globals(), *_PUBLIC])
+
 
 __all__ = [
     "CHECKPOINT_FORMAT",

@@ -22,8 +22,6 @@ import numpy as np
 from invariance._io import atomic_write_bytes
 from invariance.errors import InvarianceError
 
-from .weights import _state_sha256
-
 FORMAT = "invariance.features/1"
 
 # Cache folders whose write already failed in this process: the cache only saves time, so
@@ -201,6 +199,8 @@ def layer_keys(pairs, encoder, layers: list[str]) -> dict[str, str]:
         ``{layer: key}``; the key covers spec, weights file, module state, code,
         preprocessing, image content, cache format and layer.
     """
+    from .weights import _state_sha256  # torch: imported only when an encoder is at hand
+
     # The module state is hashed on every call: a module trained in place (alignment) must
     # never be served the features of its earlier weights.
     base = {
