@@ -5,7 +5,7 @@ Every function takes ``clean`` and ``cluttered`` arrays of shape (n_pairs, d) wh
 a scene never land on different sides of a split.
 """
 
-from invariance.metrics.cka import linear_cka
+from invariance.metrics.cka import debiased_cka, linear_cka
 from invariance.metrics.domain import domain_classifier, paired_folds
 from invariance.metrics.drift import paired_drift
 from invariance.metrics.mmd import (
@@ -17,6 +17,7 @@ from invariance.metrics.mmd import (
 from invariance.metrics.probe import linear_probes
 
 __all__ = [
+    "debiased_cka",
     "domain_classifier",
     "gaussian_kernel",
     "linear_cka",
