@@ -6,7 +6,12 @@ the functions here, so the two outputs can never read the same number differentl
 (``good``, ``fair``, ``warn`` or ``bad``) that the report turns into a colour.
 
 The words are reading aids placed next to the numbers; the numbers and their 95%
-intervals decide. Every band bound is listed in :data:`BANDS` with where it comes from.
+intervals decide. Every band bound is listed in :data:`BANDS` with where it comes from,
+and ``docs/readings.md`` explains each reading. A test reads three ways wherever it has an
+interval: a difference shown (the interval excludes the null value), no difference larger
+than a stated margin (the whole interval inside the margin: the interval form of two
+one-sided tests, Schuirmann, J. Pharmacokinet. Biopharm. 15, 1987), or inconclusive, in a
+neutral tone. A test that did not reject is never read as "invariant" on its own.
 """
 
 from __future__ import annotations
@@ -41,11 +46,23 @@ def small_sample_note(n_pairs: int) -> str:
     return (f"only {n_pairs} pairs: domain classifiers have little power with 100 or fewer samples "
             f"(Rabanser et al., NeurIPS 2019), so a near-chance accuracy is weak evidence of invariance")
 
-CLOSE_TO_CHANCE = "close to chance"
+# Margin around chance inside which a whole 95% interval of the domain accuracy reads as
+# "indistinguishable": 0.05 accuracy is a proxy A-distance of 0.2, the "small" PAD band
+# below (common practice, not a published cut-off).
+DOMAIN_MARGIN = 0.05
+
+# Margin of a probe gap (in the probe's own score: accuracy or R^2) inside which a whole
+# 95% interval reads as "task kept" (common practice).
+GAP_MARGIN = 0.05
+
+CLOSE_TO_CHANCE = "indistinguishable from chance"
+INCONCLUSIVE = "inconclusive"
 BELOW_CHANCE = "below chance (check the splits)"
 NO_INTERVAL = "no interval: chance not ruled out"
 DISTRIBUTIONS_DIFFER = "distributions differ"
 NO_DETECTABLE_DIFFERENCE = "no detectable difference"
+NOT_DECODABLE = "not decodable on clean"
+TASK_KEPT = "task kept"
 NO_TEST = "no permutation test result"
 
 
@@ -57,7 +74,8 @@ class Reading(NamedTuple):
     words : str
         Short plain words, e.g. ``"close to chance"``.
     tone : str
-        ``"good"``, ``"fair"``, ``"warn"`` or ``"bad"``.
+        ``"good"``, ``"fair"``, ``"warn"``, ``"bad"`` or ``"neutral"`` (no evidence
+        either way: shown without a colour that reads as a verdict).
     """
 
     words: str
@@ -105,8 +123,9 @@ BANDS: dict[str, tuple[Band, ...]] = {
         Band(0.5, "often found", "warn", _COMMON),
         Band(None, "often lost", "bad", _COMMON),
     ),
-    # Linear CKA (Kornblith et al., ICML 2019) is 1 for the same representation up to
-    # rotation and scale; the paper gives no bands.
+    # Debiased linear CKA (Song et al., JMLR 13, 2012; Nguyen, Raghu & Kornblith, ICLR
+    # 2021) is 1 for the same representation up to rotation and scale and about 0 for
+    # independent features (it can be negative); the papers give no bands.
     "cka": (
         Band(0.9, "very similar", "good", _COMMON),
         Band(0.7, "similar", "fair", _COMMON),
@@ -118,9 +137,27 @@ BANDS: dict[str, tuple[Band, ...]] = {
         Band(0.1, "some loss", "warn", _COMMON),
         Band(None, "task degraded", "bad", _COMMON),
     ),
+    # Task information on cluttered views, as a skill score (invariance.verdict): the share
+    # of the way from the no-feature baseline (0) to a perfect probe (1) that the clean-
+    # trained probe still goes on cluttered views. Below 0.1 the encoder is called
+    # uninformative (see invariance.verdict.SKILL_FLOOR).
+    "task_information": (
+        Band(0.8, "task information kept", "good", _COMMON),
+        Band(0.5, "partly kept", "fair", _COMMON),
+        Band(0.1, "mostly lost", "warn", _COMMON),
+        Band(None, "lost (uninformative)", "bad", _COMMON),
+    ),
 }
 
 _LOWER_IS_BETTER = frozenset({"proxy_a_distance", "relative_drift", "probe_gap"})
+
+# Where each metric's reading note lives in the report (``#note-...``) and in
+# docs/readings.md (the same anchors).
+NOTE_ANCHORS = {
+    "task_information": "note-information", "domain_accuracy": "note-domain", "proxy_a_distance": "note-pad",
+    "mmd": "note-mmd", "relative_drift": "note-drift", "pair_retrieval": "note-retrieval", "cka": "note-cka",
+    "probe_gap": "note-probe", "gates": "note-gates",
+}
 
 
 # ---------------------------------------------------------------- number formats
@@ -139,7 +176,11 @@ def format_number(value, digits: int = DIGITS) -> str:
 
 
 def format_percent(value) -> str:
-    """``value`` (a fraction) as a whole percentage, e.g. ``0.565`` -> ``"57%"``."""
+    """``value`` (a fraction) as a whole percentage, e.g. ``0.565`` -> ``"57%"``.
+
+    Kept for callers outside the readings; accuracies and shares are shown as fractions
+    with :data:`DIGITS` decimals everywhere the product prints them (one unit).
+    """
     value = finite(value)
     return DASH if value is None else f"{100 * value:.0f}%"
 
@@ -202,12 +243,30 @@ def separates_domains(ci) -> bool | None:
     return None if ci is None else ci[0] > CHANCE
 
 
-def read_domain_accuracy(accuracy: float, ci, *, small_sample: bool = False) -> Reading:
+def indistinguishable(ci, margin: float = DOMAIN_MARGIN) -> bool:
+    """Whether the whole 95% interval lies within ``margin`` of chance.
+
+    The interval form of two one-sided tests of equivalence (Schuirmann, J.
+    Pharmacokinet. Biopharm. 15, 1987; a 95% interval is the stricter, 2.5% per side).
+    """
+    ci = interval(ci)
+    return ci is not None and CHANCE - margin <= ci[0] and ci[1] <= CHANCE + margin
+
+
+def _reach(ci, pairs, noun: str = "pairs") -> str:
+    """``"N pairs; the interval reaches 0.440-0.625"`` for an inconclusive reading."""
+    count = f"{pairs} {noun}; " if isinstance(pairs, int) and not isinstance(pairs, bool) else ""
+    return f"{count}the interval reaches {format_number(ci[0])}{DASH}{format_number(ci[1])}"
+
+
+def read_domain_accuracy(accuracy: float, ci, *, small_sample: bool = False, pairs: int | None = None) -> Reading:
     """Words for the held-out domain accuracy, decided by its 95% interval.
 
-    One rule: the encoder separates the domains when the whole interval lies above
-    chance; then the accuracy says how far (:data:`BANDS` ``"domain_accuracy"``).
-    Otherwise it is close to chance, or below chance when the whole interval is.
+    Three readings: *separable* when the whole interval lies above chance (the accuracy
+    then says how far, :data:`BANDS` ``"domain_accuracy"``); *indistinguishable from
+    chance* when the whole interval lies within :data:`DOMAIN_MARGIN` of 0.5; otherwise
+    *inconclusive*, in a neutral tone, naming the pairs and how far the interval reaches.
+    An interval wholly below chance points at a leak in the splits.
 
     Parameters
     ----------
@@ -217,6 +276,8 @@ def read_domain_accuracy(accuracy: float, ci, *, small_sample: bool = False) -> 
         Its 95% interval.
     small_sample : bool
         The metric's ``small_sample`` flag; adds :data:`SMALL_SAMPLE_WORDS`.
+    pairs : int, optional
+        Pairs the accuracy was measured on, named in an inconclusive reading.
 
     Returns
     -------
@@ -230,8 +291,10 @@ def read_domain_accuracy(accuracy: float, ci, *, small_sample: bool = False) -> 
         reading = Reading(degree.words, degree.tone)
     elif interval(ci)[1] < CHANCE:
         reading = Reading(BELOW_CHANCE, "warn")
-    else:
+    elif indistinguishable(ci):
         reading = Reading(CLOSE_TO_CHANCE, "good")
+    else:
+        reading = Reading(f"{INCONCLUSIVE} ({_reach(interval(ci), pairs)})", "neutral")
     if small_sample:
         return Reading(f"{reading.words}; {SMALL_SAMPLE_WORDS}", reading.tone)
     return reading
@@ -243,17 +306,22 @@ def read_proxy_a_distance(distance: float) -> Reading:
 
 
 def read_mmd(p_value) -> Reading:
-    """Words for the MMD permutation test, decided by its p-value at :data:`ALPHA`."""
+    """Words for the MMD permutation test, decided by its p-value at :data:`ALPHA`.
+
+    A p-value at or above :data:`ALPHA` reads "no detectable difference" in a neutral tone:
+    the test has no interval of the effect, so not rejecting is no evidence of invariance
+    (absence of evidence; Altman & Bland, BMJ 311, 1995).
+    """
     p_value = finite(p_value)
     if p_value is None:
         return Reading(NO_TEST, "warn")
     if p_value < ALPHA:
         return Reading(DISTRIBUTIONS_DIFFER, "bad")
-    return Reading(NO_DETECTABLE_DIFFERENCE, "good")
+    return Reading(NO_DETECTABLE_DIFFERENCE, "neutral")
 
 
 def read_relative_drift(drift: float) -> Reading:
-    """Words for the relative drift (0 invariant, 1 as far as a different scene)."""
+    """Words for the mean relative drift (0 invariant, 1 as far as a different scene)."""
     return _band("relative_drift", drift)
 
 
@@ -263,22 +331,87 @@ def read_pair_retrieval(top1: float) -> Reading:
 
 
 def read_cka(value: float) -> Reading:
-    """Words for linear CKA between clean and cluttered features."""
+    """Words for debiased CKA between clean and cluttered features."""
     return _band("cka", value)
 
 
 def read_probe_gap(gap: float) -> Reading:
-    """Words for a linear probe's clean minus cluttered score."""
+    """Words for a probe's clean minus cluttered score, from the point value alone."""
     return _band("probe_gap", gap)
+
+
+def read_task_information(skill: float) -> Reading:
+    """Words for the task information left on cluttered views (skill score, 0 to 1)."""
+    return _band("task_information", skill)
+
+
+def gap_unit(entry: dict) -> str:
+    """The unit a probe's gap is in: ``"accuracy"`` or ``"R\u00b2"``."""
+    return "R\u00b2" if entry.get("metric") == "r2" else "accuracy"
+
+
+def probe_decodable(entry: dict) -> bool:
+    """Whether the probe learned the task on clean views (``decodable``, or the scores).
+
+    Results written before ``decodable`` existed: an R^2 above 0 (the training mean) or,
+    for classes, any accuracy (no baseline was stored) counts as decodable.
+    """
+    stored = entry.get("decodable")
+    if isinstance(stored, bool):
+        return stored
+    clean, baseline = finite(entry.get("clean")), finite(entry.get("baseline"))
+    if clean is None:
+        return False
+    if baseline is not None:
+        return clean > baseline
+    return clean > 0.0 if entry.get("metric") == "r2" else True
+
+
+def read_probe(entry: dict) -> Reading:
+    """Words for one probe, decided by its gap's 95% interval where it has one.
+
+    ``not decodable on clean`` (neutral) when the probe never learned the task; ``task
+    kept`` when the whole gap interval lies within :data:`GAP_MARGIN` of 0; a loss band
+    (:data:`BANDS` ``"probe_gap"``) when the interval lies above 0; otherwise
+    inconclusive. Without an interval (older results) the point gap's band is used.
+    """
+    if not probe_decodable(entry):
+        return Reading(NOT_DECODABLE, "neutral")
+    gap, ci = finite(entry.get("gap")), interval(entry.get("gap_ci"))
+    if gap is None:
+        return Reading(NO_INTERVAL, "warn")
+    if ci is None:
+        return read_probe_gap(gap)
+    if -GAP_MARGIN <= ci[0] and ci[1] <= GAP_MARGIN:
+        return Reading(TASK_KEPT, "good")
+    if ci[0] > 0:
+        band = read_probe_gap(gap)
+        return band if band.words != TASK_KEPT else Reading("some loss", "warn")
+    if ci[1] < 0:
+        return Reading("better on cluttered", "neutral")
+    return Reading(f"{INCONCLUSIVE} ({_reach(ci, entry.get('n_test'), 'held-out pairs')})", "neutral")
 
 
 # ---------------------------------------------------------------- terminal rows
 
-def _domain_row(m: dict) -> tuple[str, str, str, str]:
+Row = tuple[str, str, str, str]
+
+
+def domain_pairs(entry: dict, default: int | None = None) -> int | None:
+    """Pairs behind a domain accuracy: ``pairs_used``, else half its held-out images, else ``default``."""
+    for key, scale in (("pairs_used", 1), ("n_test", 2)):
+        value = entry.get(key)
+        if isinstance(value, int) and not isinstance(value, bool) and value > 0:
+            return value // scale
+    return default
+
+
+def _domain_row(m: dict, pairs: int | None) -> Row:
     accuracy, ci = m["accuracy"], interval(m.get("ci"))
-    reading = read_domain_accuracy(accuracy, ci, small_sample=bool(m.get("small_sample")))
-    told = f"a linear classifier tells clean from cluttered {format_percent(accuracy)} of the time"
-    chance = format_percent(CHANCE)
+    pairs = domain_pairs(m, pairs)
+    reading = read_domain_accuracy(accuracy, ci, small_sample=bool(m.get("small_sample")), pairs=pairs)
+    told = f"a linear classifier tells clean from cluttered on {format_number(accuracy)} of held-out images"
+    chance = format_number(CHANCE)
     separated = separates_domains(ci)
     if separated is None:
         why = f"{told}; without an interval chance ({chance}) is not ruled out"
@@ -286,62 +419,86 @@ def _domain_row(m: dict) -> tuple[str, str, str, str]:
         why = f"{told} and its 95% interval lies above chance ({chance}), so the encoder separates the domains"
     elif ci[1] < CHANCE:
         why = f"{told} and its 95% interval lies below chance ({chance}), so check that pairs are split by scene"
+    elif indistinguishable(ci):
+        why = (f"{told} and its whole 95% interval lies within {format_number(DOMAIN_MARGIN, 2)} of chance "
+               f"({chance}), so clutter is not separable beyond that margin")
     else:
-        why = (f"{told} and its 95% interval includes chance ({chance}), so there is no evidence the "
-               f"encoder separates the domains")
-    return ("domain classifier accuracy", format_percent(accuracy), format_percent_interval(ci),
-            f"{reading.words}: {why}")
+        why = (f"{told}; its 95% interval includes chance ({chance}), so there is no evidence the encoder "
+               f"separates the domains, but it is too wide to show invariance within "
+               f"{format_number(DOMAIN_MARGIN, 2)}: more pairs would settle it")
+    return ("domain classifier accuracy", format_number(accuracy), format_interval(ci), f"{reading.words}: {why}")
 
 
-def _mmd_row(m: dict) -> tuple[str, str, str, str]:
+def _mmd_row(m: dict) -> Row:
     p = format_p_value(m.get("p_value"))
     reading = read_mmd(m.get("p_value"))
     why = {
         DISTRIBUTIONS_DIFFER: "the clean and cluttered feature distributions are not the same",
-        NO_DETECTABLE_DIFFERENCE: "the clean and cluttered feature distributions cannot be told apart",
+        NO_DETECTABLE_DIFFERENCE: "this test did not tell the distributions apart, which is not evidence "
+                                  "that they are the same",
     }.get(reading.words, "the permutation test did not report a p-value")
     return ("MMD^2", f"{format_number(m['mmd2'], 4)} ({p})", "",
-            f"{reading.words}: {why} (within-pair permutation test, {p})")
+            f"{reading.words}: {why} (within-pair permutation test, {p}; its own bandwidth per encoder)")
 
 
-def _drift_rows(m: dict) -> list[tuple[str, str, str, str]]:
-    drift, top1 = m["relative_drift"], m["pair_retrieval_top1"]
-    return [
-        ("relative drift", format_number(drift), format_interval(m.get("relative_drift_ci")),
-         f"{read_relative_drift(drift).words}: clutter moves a scene's feature {format_percent(drift)} as far "
-         f"as changing the scene does (0 = invariant, 1 = as far as a different scene)"),
-        ("pair retrieval top-1", format_percent(top1), "",
-         f"{read_pair_retrieval(top1).words}: {format_percent(top1)} of cluttered images find their own "
-         f"clean image as the nearest clean feature"),
+def _drift_rows(m: dict) -> list[Row]:
+    drift, top1 = m["relative_drift"], m.get("pair_retrieval_top1")
+    rows = [
+        ("mean relative drift", format_number(drift), format_interval(m.get("relative_drift_ci")),
+         f"{read_relative_drift(drift).words}: on average clutter moves a scene's feature {format_number(drift)} "
+         f"of the way a change of scene does (0 = invariant, 1 = as far as a different scene)"),
     ]
+    if finite(top1) is not None:
+        rows.append(("pair retrieval top-1", format_number(top1), "",
+                     f"{read_pair_retrieval(top1).words}: {format_number(top1)} of cluttered images find their own "
+                     f"clean image as the nearest clean feature"))
+    return rows
 
 
-def _cka_row(value: float) -> tuple[str, str, str, str]:
-    return ("linear CKA", format_number(value), "",
+def _cka_row(value: float) -> Row:
+    return ("CKA (debiased)", format_number(value), "",
             f"{read_cka(value).words}: clean and cluttered representations align at {format_number(value)} "
-            f"(1 = the same up to rotation and scale, 0 = unrelated)")
+            f"(1 = the same up to rotation and scale, about 0 = unrelated; debiased, so it can be negative)")
 
 
-def _probe_row(label: str, m: dict) -> tuple[str, str, str, str]:
-    clean, cluttered, gap = (format_number(m[k]) for k in ("clean", "cluttered", "gap"))
-    return (f"probe {label} ({m['metric']})", f"{clean} -> {cluttered} (gap {gap})", "",
-            f"{read_probe_gap(m['gap']).words}: a probe trained on clean features scores {clean} on "
-            f"held-out clean and {cluttered} on the same scenes cluttered (gap {gap})")
+def _probe_row(label: str, m: dict) -> Row:
+    unit = gap_unit(m)
+    clean, cluttered, gap = (format_number(m.get(k)) for k in ("clean", "cluttered", "gap"))
+    reading = read_probe(m)
+    value = f"{clean} -> {cluttered} (gap {gap} {unit})"
+    if reading.words == NOT_DECODABLE:
+        baseline = format_number(m.get("baseline"))
+        return (f"probe {label} ({m.get('metric')})", value, "",
+                f"{NOT_DECODABLE}: a probe trained on clean features scores {clean} on held-out clean scenes, "
+                f"not above the no-feature baseline {baseline}, so its gap is left out of the worst gap and the gate")
+    return (f"probe {label} ({m.get('metric')})", value, format_interval(m.get("gap_ci")),
+            f"{reading.words}: a probe trained on clean features scores {clean} on held-out clean and "
+            f"{cluttered} on the same scenes cluttered (gap {gap} {unit})")
 
 
-def _not_computable(title: str, value) -> tuple[str, str, str, str] | None:
+def _not_computable(title: str, value) -> Row | None:
     if isinstance(value, dict) and "not_computable" in value:
         return (title, "n/a", "", str(value["not_computable"]))
     return None
 
 
-def describe_metrics(metrics: dict) -> list[tuple[str, str, str, str]]:
+def _absent(metrics: dict, key: str) -> str | None:
+    """The reason a metric was left out on purpose (``not_computed``), if one is given."""
+    reasons = metrics.get("not_computed")
+    if isinstance(reasons, dict) and key in reasons:
+        return str(reasons[key])
+    return None
+
+
+def describe_metrics(metrics: dict, *, pairs: int | None = None) -> list[Row]:
     """Plain-language rows for the terminal table.
 
     Parameters
     ----------
     metrics : dict
         The ``metrics`` object of :func:`invariance.scoring.score_features`.
+    pairs : int, optional
+        Pairs measured, named in inconclusive readings when the metric does not say.
 
     Returns
     -------
@@ -349,17 +506,21 @@ def describe_metrics(metrics: dict) -> list[tuple[str, str, str, str]]:
         One row per metric (two for paired drift, one per probe); ``interval`` is the
         95% interval where the metric has one, else "". Each reading starts with the
         words the HTML report shows for the same number. A metric that could not be
-        computed reads "n/a" with its reason.
+        computed reads "n/a" with its reason. Accuracies and shares are fractions with
+        three decimals, like everywhere else.
     """
-    rows = []
+    rows: list[Row] = []
     single = (
-        ("domain_classifier", "domain classifier accuracy", _domain_row),
+        ("domain_classifier", "domain classifier accuracy", lambda m: _domain_row(m, pairs)),
         ("mmd", "MMD^2", _mmd_row),
-        ("paired_drift", "relative drift", _drift_rows),
-        ("cka", "linear CKA", _cka_row),
+        ("paired_drift", "mean relative drift", _drift_rows),
+        ("cka", "CKA (debiased)", _cka_row),
     )
     for key, title, describe in single:
         if key not in metrics:
+            reason = _absent(metrics, key)
+            if reason:
+                rows.append((title, "n/a", "", f"not computed: {reason}"))
             continue
         missing = _not_computable(title, metrics[key])
         described = [missing] if missing else describe(metrics[key])

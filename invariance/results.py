@@ -171,7 +171,8 @@ def make_comparison(results: Sequence[dict], failures: Iterable[dict] = (),
     """
     results = [validate_result(r, source=f"result {i + 1}") for i, r in enumerate(results)]
     merged = []
-    for warning in list(warnings) + check_same_dataset(results):
+    overlap = [w for w in (aligned_on_same_pairs(r) for r in results) if w]
+    for warning in list(warnings) + check_same_dataset(results) + overlap:
         if warning not in merged:
             merged.append(str(warning))
     return {
@@ -183,13 +184,14 @@ def make_comparison(results: Sequence[dict], failures: Iterable[dict] = (),
 
 
 def rank_results(results: Sequence[dict]) -> list[int]:
-    """Order encoders from most to least invariant.
+    """Order encoders from the one to try first on hardware to the last.
 
-    The rule: the lower held-out domain-classifier accuracy ranks first (a classifier that
-    cannot tell clean from cluttered features is the goal, 0.5 is chance). Accuracies equal
-    at the reported precision (three decimals) are broken by the lower relative drift, then
-    by input order. Results whose domain accuracy is not computable go last, ordered among
-    themselves by relative drift; a missing drift counts as worst.
+    The rule is :func:`invariance.verdict.rank`: the task information left in the
+    cluttered view (mean skill over the tasks some encoder decodes on clean, 0 to 1),
+    with collapsed (constant) features last; without task labels it falls back to the
+    lower held-out domain accuracy (ties at three decimals by the lower relative drift).
+    Encoders whose intervals overlap share a rank there (see ``Ranking.ranks``); this
+    function gives the order only, input order breaking exact ties.
 
     Parameters
     ----------
@@ -201,24 +203,56 @@ def rank_results(results: Sequence[dict]) -> list[int]:
     list of int
         Indices into ``results``, best first.
     """
-    def key(index: int):
-        metrics = results[index].get("metrics") or {}
-        accuracy = metric_value(metrics, "domain_classifier", "accuracy")
-        drift = metric_value(metrics, "paired_drift", "relative_drift")
-        return (
-            accuracy is None,
-            round(accuracy, 3) if accuracy is not None else 0.0,
-            drift if drift is not None else math.inf,
-            index,
-        )
+    from invariance.verdict import rank
 
-    return sorted(range(len(results)), key=key)
+    return rank(results).order
+
+
+def add_caution(data: dict) -> dict:
+    """``data`` (a result or comparison) with the safety caution under ``caution``.
+
+    Every written result carries it, so a file read without the tool still says that
+    passing these checks is evidence, not a certificate that a robot is safe.
+    """
+    from invariance import SAFETY_CAUTION
+
+    data["caution"] = SAFETY_CAUTION
+    for result in data.get("results") or []:
+        if isinstance(result, dict):
+            result["caution"] = SAFETY_CAUTION
+    return data
+
+
+def aligned_on_same_pairs(result: dict) -> str | None:
+    """A warning when a checkpoint is scored on the pairs it was aligned on, else ``None``.
+
+    Reads the content hash of the alignment's data set that ``invariance align`` records
+    in the checkpoint (``encoder.aligned_on``, a content hash, or a dict holding
+    ``content_hash``) and compares it with ``dataset.content_hash``.
+    """
+    encoder = result.get("encoder") if isinstance(result.get("encoder"), dict) else {}
+    aligned_on = encoder.get("aligned_on")
+    if isinstance(aligned_on, dict):
+        aligned_on = aligned_on.get("content_hash")
+    scored_on = (result.get("dataset") or {}).get("content_hash") if isinstance(result.get("dataset"), dict) else None
+    if not isinstance(aligned_on, str) or not aligned_on or aligned_on != scored_on:
+        return None
+    return (f"{display_name(result)} is scored on the pairs it was aligned on (content hash {aligned_on[:12]}...): "
+            "the alignment trained on these scenes, so its numbers flatter it; score it on scenes it never saw.")
 
 
 def display_name(result: dict) -> str:
-    """The encoder's display name, falling back to its spec."""
+    """The encoder's display name, falling back to its spec.
+
+    A copy whose alignment did not improve on the original (``alignment.improved`` is
+    false) is not titled "aligned": the word is dropped and the name says so.
+    """
     encoder = result.get("encoder") or {}
-    return str(encoder.get("name") or encoder.get("spec") or "unnamed encoder")
+    name = str(encoder.get("name") or encoder.get("spec") or "unnamed encoder")
+    alignment = result.get("alignment")
+    if isinstance(alignment, dict) and alignment.get("improved") is False:
+        name = name.replace(", aligned", "").replace(" aligned", "") + " (alignment did not improve it)"
+    return name
 
 
 def metric_value(metrics: dict, metric: str, key: str | None = None) -> float | None:
@@ -308,7 +342,9 @@ _UNIT = (0.0, 1.0)
 _NONNEGATIVE = (0.0, math.inf)
 # Ranges of the documented metric values (docs/design.md, "The metrics object"): accuracies,
 # shares and p-values are proportions; drift and distances are non-negative; linear CKA lies
-# in [0, 1] (Kornblith et al., ICML 2019). A value of another type is left to the report,
+# in [0, 1] (Kornblith et al., ICML 2019); debiased CKA, an inner product of U-centred
+# kernel matrices over their norms (Song et al., JMLR 13, 2012), lies in [-1, 1].
+# A value of another type is left to the report,
 # which shows it as unreadable; a number outside its range would be ranked or read as real.
 _RANGES = {
     "domain_classifier": {"accuracy": _UNIT, "paired_accuracy": _UNIT, "ci": _UNIT},
@@ -390,8 +426,8 @@ def _check_metrics(metrics, where: str, source: str) -> None:
     for name, entry in _dict(metrics).items():
         if name == "probe":
             _check_probe(entry, f"{where}.probe", source)
-        elif name == "cka" and not isinstance(entry, dict) and entry is not None:
-            _number(entry, f"{where}.cka", source, _UNIT)
+        elif name in ("cka", "cka_linear") and not isinstance(entry, dict) and entry is not None:
+            _number(entry, f"{where}.{name}", source, (-1.0, 1.0) if name == "cka" else _UNIT)
         else:
             _check_entry(name, entry, f"{where}.{name}", source)
 

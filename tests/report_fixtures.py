@@ -52,13 +52,19 @@ def make_metrics(rng: np.random.Generator, *, separability: float, pairs: int = 
                 "permutations": 1000, "bandwidth": float(rng.uniform(5, 20)), "method": "exact"},
         "probe": {
             "part": {"kind": "classification", "metric": "accuracy", "clean": clean_acc,
-                     "cluttered": part_cluttered, "gap": clean_acc - part_cluttered},
+                     "cluttered": part_cluttered, "gap": clean_acc - part_cluttered,
+                     "gap_ci": [clean_acc - part_cluttered - 0.08, clean_acc - part_cluttered + 0.08],
+                     "baseline": 0.25, "decodable": True, "n_train": pairs - pairs * 3 // 10,
+                     "n_test": pairs * 3 // 10},
             "x": {"kind": "regression", "metric": "r2", "clean": clean_r2, "cluttered": x_cluttered,
-                  "gap": clean_r2 - x_cluttered},
+                  "gap": clean_r2 - x_cluttered, "gap_ci": [clean_r2 - x_cluttered - 0.1, clean_r2 - x_cluttered + 0.1],
+                  "baseline": -0.01, "decodable": True, "n_train": pairs - pairs * 3 // 10,
+                  "n_test": pairs * 3 // 10},
         },
         "paired_drift": {"relative_drift": drift, "relative_drift_ci": [max(0.0, drift - 0.04), drift + 0.04],
                          "pair_retrieval_top1": float(np.clip(1 - 0.8 * separability, 0, 1))},
         "cka": float(np.clip(0.97 - 0.6 * separability + rng.normal(0, 0.01), 0, 1)),
+        "cka_linear": float(np.clip(0.98 - 0.5 * separability + rng.normal(0, 0.01), 0, 1)),
     }
 
 
@@ -130,6 +136,32 @@ def two_encoder_results(dataset_path: str | Path) -> list[dict]:
         make_result(seed=2, name="Bench CNN (aligned)", spec="checkpoint:aligned.pt", dataset_path=dataset_path,
                     separability=0.15, with_alignment=True),
     ]
+
+
+def blind_metrics(pairs: int = 48) -> dict:
+    """The metrics scoring records for a constant-output ("blind") encoder.
+
+    Every feature is constant, so the domain classifier's note says so (accuracy 0.5 by
+    construction), CKA and drift are not computable, and every probe scores its no-feature
+    baseline, so no task is decodable on clean (what invariance.scoring writes for such
+    features).
+    """
+    base = {"kind": "classification", "metric": "accuracy", "clean": 0.25, "cluttered": 0.25, "gap": 0.0,
+            "gap_ci": [0.0, 0.0], "baseline": 0.25, "decodable": False, "n_train": 34, "n_test": 14,
+            "note": "not decodable on clean"}
+    x = {**base, "kind": "regression", "metric": "r2", "clean": -0.01, "cluttered": -0.01, "baseline": -0.01}
+    return {
+        "domain_classifier": {"accuracy": 0.5, "ci": [0.44, 0.56], "proxy_a_distance": 0.0, "p_value": 1.0,
+                              "folds": 5, "n_test": 2 * pairs, "pairs_used": pairs,
+                              "note": "every feature is constant within the training folds: nothing separates "
+                                      "the domains, so the accuracy is chance by construction"},
+        "mmd": {"mmd2": 0.0, "p_value": 1.0, "permutations": 1000, "bandwidth": 1.0, "method": "exact"},
+        "probe": {"part": base, "x": x},
+        "paired_drift": {"not_computable": "the clean features of different scenes point the same way (median "
+                                           "cosine distance 0), so there is no scene scale to compare with"},
+        "cka": {"not_computable": "debiased CKA is undefined when one feature matrix is constant across rows"},
+        "cka_linear": {"not_computable": "linear CKA is undefined when one feature matrix is constant across rows"},
+    }
 
 
 def not_computable(result: dict, metric: str, reason: str) -> dict:

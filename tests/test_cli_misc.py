@@ -90,3 +90,64 @@ def test_score_help_says_what_data_may_be_and_lists_exit_codes():
 def test_bad_option_values_are_usage_errors_naming_the_flag(tmp_path, args, flag):
     res = CliRunner().invoke(cli, args)
     assert res.exit_code == 2 and flag in res.output and "Traceback" not in res.output
+
+
+def test_score_help_puts_the_caution_beside_the_gates():
+    from invariance import SAFETY_CAUTION
+
+    text = " ".join(CliRunner().invoke(cli, ["score", "--help"], terminal_width=400).output.split())
+    gates = text[text.index("--max-domain-accuracy"):]
+    assert "95% upper end" in gates and "any scored layer" in gates
+    assert "not a safety function" in gates and " ".join(SAFETY_CAUTION.split()) in gates
+
+
+def _captured_compare(monkeypatch, tmp_path, args):
+    from invariance import pipeline
+    from invariance.results import make_comparison
+    from report_fixtures import make_result
+
+    seen = {}
+
+    def fake(data, entries, **kwargs):
+        seen["entries"] = list(entries)
+        return make_comparison([make_result(seed=i, name=e.name or e.spec, spec=e.spec, with_layers=False,
+                                            with_breakdowns=False) for i, e in enumerate(entries)])
+
+    monkeypatch.setattr(pipeline, "compare_encoders", fake)
+    res = CliRunner().invoke(cli, ["compare", str(tmp_path), *args, "--json", str(tmp_path / "c.json")])
+    return res, seen
+
+
+def test_compare_weights_and_names_reach_each_encoder_in_order(monkeypatch, tmp_path):
+    (tmp_path / "w.pt").write_bytes(b"x")
+    res, seen = _captured_compare(monkeypatch, tmp_path, [
+        "--encoder", "torchvision:resnet18", "--weights", str(tmp_path / "w.pt"), "--name", "tuned ResNet",
+        "--encoder", "torchvision:resnet34", "--weights", str(tmp_path / "w.pt"), "--name", "other"])
+    assert res.exit_code == 0, res.output
+    assert [(e.spec, e.weights, e.name) for e in seen["entries"]] == [
+        ("torchvision:resnet18", tmp_path / "w.pt", "tuned ResNet"),
+        ("torchvision:resnet34", tmp_path / "w.pt", "other")]
+    written = json.loads((tmp_path / "c.json").read_text())
+    assert "ISO 10218" in written["caution"] and all("caution" in r for r in written["results"])
+    assert "verdict: " in res.output and "task information [95%]" in res.output
+
+
+def test_compare_weights_given_for_some_encoders_only_is_a_usage_error(monkeypatch, tmp_path):
+    res, seen = _captured_compare(monkeypatch, tmp_path, [
+        "--encoder", "torchvision:resnet18", "--encoder", "torchvision:resnet34", "--weights", "w.pt"])
+    assert res.exit_code == 2 and "--weights is given 1 time(s) for 2 --encoder" in res.output and not seen
+
+
+def test_summary_prints_every_scored_layer_and_each_warning_once(capsys):
+    from invariance.cli._print import print_summary
+    from report_fixtures import make_result
+
+    result = make_result(seed=1, name="bench CNN", spec="python:m:a", with_breakdowns=True)
+    result["warnings"] = ["constant columns", "constant columns"]
+    print_summary(result)
+    out = capsys.readouterr().out
+    for layer in result["layers"]:
+        assert f"layer {layer}:" in out
+    assert out.count("warning: constant columns") == 1
+    assert "by factor_surface (0 = this factor off, the others on)" in out and out.startswith("bench CNN")
+    assert "verdict: bench CNN: on cluttered views" in out

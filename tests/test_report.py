@@ -111,10 +111,11 @@ def test_every_section_is_present_once(two_encoders):
 def test_every_embedded_image_is_a_png(two_encoders):
     _, page, _ = two_encoders
     payloads = DATA_URI.findall(page)
-    # 6 cross-encoder charts (accuracy, drift, CKA, MMD, two probes); per encoder a projection,
-    # a histogram, a layer profile and two breakdown charts; one alignment chart; thumbnails.
+    # 7 cross-encoder charts (task information, accuracy, drift, CKA, MMD, two probes); per
+    # encoder a projection, a histogram, a layer profile and four breakdown charts (factors and
+    # level on their own axes, accuracy and drift each); one alignment chart; thumbnails.
     thumbnails = 2 * 2 * WORST_PAIRS + 2 * EXAMPLE_PAIRS
-    assert len(payloads) == 6 + 2 * 5 + 1 + thumbnails
+    assert len(payloads) == 7 + 2 * 7 + 1 + thumbnails
     for payload in payloads:
         with Image.open(io.BytesIO(base64.b64decode(payload))) as image:
             assert image.format == "PNG"
@@ -140,11 +141,16 @@ def test_self_contained_no_address_no_script(two_encoders):
     assert "<link" not in page.lower() and "@import" not in page
 
 
-def test_safety_caution_at_top_and_end(two_encoders):
-    _, page, _ = two_encoders
+def test_safety_caution_at_top_and_end_and_beside_every_gate_table(two_encoders):
+    results, page, _ = two_encoders
     caution = escape(invariance.SAFETY_CAUTION)
-    assert page.count(caution) == 2
+    with_gates = sum(bool(r.get("gates")) for r in results)
+    assert with_gates == 2 and page.count(caution) == 2 + with_gates
     assert page.index(caution) < page.index('id="summary"') < page.rindex(caution)
+    for i in range(2):
+        gates = _section(page, f"encoder-{i}")
+        gates = gates[gates.index("<h3>Gates"):]
+        assert "a regression check, not a safety function: " + caution in gates
 
 
 def test_summary_rows_and_sections_follow_the_ranking(two_encoders):
@@ -155,17 +161,21 @@ def test_summary_rows_and_sections_follow_the_ranking(two_encoders):
     names = [escape(results[i]["encoder"]["name"]) for i in order]
     assert summary.index(names[0]) < summary.index(names[1])
     assert page.index('id="encoder-1"') < page.index('id="encoder-0"')
-    assert "ranks first" in summary and names[0] in summary.split("ranks first")[0]
+    assert "first on hardware" in summary and names[0] in summary.split("first on hardware")[0]
     assert "like-for-like" not in summary  # one data set: no mixed-data caution
 
 
 def test_summary_cells_carry_plain_readings(two_encoders):
     _, page, _ = two_encoders
     summary = _section(page, "summary")
-    rows = summary.split("<tr>")[2:]
-    assert "close to chance" in rows[0] and "distributions differ" not in rows[0]
+    rows = summary.split("<tbody>")[1].split("</tr>")[:2]
+    # 48 pairs: the aligned encoder's interval covers chance but is too wide to call it invariant
+    assert "inconclusive (48 pairs; the interval reaches" in rows[0] and "distributions differ" not in rows[0]
+    assert "no detectable difference" in rows[0] and 'class="reading neutral"' in rows[0]
     assert "separable" in rows[1] and "distributions differ" in rows[1]
     assert "1 of 1 failed" in rows[1] and "all 1 met" in rows[0]
+    for anchor in ("note-information", "note-domain", "note-mmd", "note-drift", "note-cka", "note-probe"):
+        assert f'href="#{anchor}"' in summary and f'id="{anchor}"' in _section(page, "reading-notes")
 
 
 def test_encoder_sections_hold_their_blocks(two_encoders):
@@ -226,7 +236,8 @@ def test_not_computable_metrics_render_their_reason(edge_case):
     assert "not computable: only one domain present" in other
     assert "Projection not computable: all feature vectors are identical" in other
     summary = _section(edge_case, "summary")
-    assert summary.index(escape(EVIL)) < summary.index("Other data")  # not computable ranks last
+    row = summary[summary.index("Other data</a>"):]
+    assert "not computable: only one domain present" in row.split("</tr>")[0]
 
 
 def test_mixed_datasets_show_a_visible_warning(edge_case):
@@ -239,7 +250,7 @@ def test_mixed_datasets_show_a_visible_warning(edge_case):
 def test_image_root_override_and_missing_images(edge_case):
     hostile, other = _section(edge_case, "encoder-0"), _section(edge_case, "encoder-1")
     assert 'class="thumb"' in hostile and "Images for 1 of these pairs were not found" in hostile
-    assert 'class="thumb"' not in other and "were not found" in other and "scene_00000.png" in other
+    assert 'class="thumb"' not in other and "were not found" in other and "<figcaption><code>scene_000" in other
 
 
 def test_tsne_shown_when_coordinates_exist_else_explained(edge_case):
@@ -350,3 +361,59 @@ def test_sparse_and_odd_results_still_render():
     assert "no labels.csv" in odd_section and "unreadable value in the result file" in odd_section
     assert "0.300" in odd_section  # the readable drift survives its unreadable interval
     assert "could not be drawn" not in page
+
+
+def test_factor_zero_is_labelled_off_and_level_has_its_own_axis(two_encoders):
+    _, page, _ = two_encoders
+    section = _section(page, "encoder-0")
+    assert "<td>0 (this factor off, the others on)</td>" in section and "<td>level</td><td>0</td>" in section
+    assert 'alt="breakdown of accuracy by factor severity (0 = this factor off, the others on)"' in section
+    assert 'alt="breakdown of accuracy by clutter level (every active factor)"' in section
+
+
+def test_mmd_chart_says_bandwidths_differ_and_drift_says_mean(two_encoders):
+    _, page, _ = two_encoders
+    charts = _section(page, "charts")
+    assert "bar heights are not on one scale" in charts
+    assert "The headline drift is the mean over pairs" in _section(page, "encoder-0")
+    assert "Mean relative drift [95% interval]" in _section(page, "summary")
+
+
+def test_chart_labels_keep_whole_names():
+    # Two names that share a prefix ("workbench CNN, clean-...") must not be cut alike.
+    from matplotlib.figure import Figure
+
+    names = ["workbench CNN, clean-only training", "workbench CNN, clean-only, aligned"]
+    fig = Figure()
+    ax = fig.add_subplot(1, 1, 1)
+    plots._categorical_axis(ax, np.arange(2), names)
+    shown = [label.get_text().replace("\n", " ") for label in ax.get_xticklabels()]
+    assert shown == names
+    assert all(label.get_fontsize() >= 8 for label in ax.get_xticklabels())
+
+
+def test_random_weights_reference_and_a_failed_alignment_are_named_plainly():
+    reference = make_result(seed=3, name="ResNet-18", spec="torchvision:resnet18", with_layers=False,
+                            with_breakdowns=False)
+    copy_ = make_result(seed=4, name="bench CNN, aligned", spec="checkpoint:a.pt", with_layers=False,
+                        with_breakdowns=False, with_alignment=True)
+    copy_["alignment"].update(improved=False, cut_short=True)
+    page = render_report([reference, copy_])
+    assert "random-weights reference, not a trained encoder" in _section(page, "encoder-0")
+    aligned = _section(page, "encoder-1")
+    assert "bench CNN (alignment did not improve it)" in aligned and "bench CNN, aligned" not in page
+    assert "did not improve on the original encoder" in aligned and "cut short" in aligned
+
+
+def test_a_blind_encoder_is_labelled_collapsed_and_listed_last():
+    from report_fixtures import blind_metrics
+
+    good = make_result(seed=1, name="bench CNN", spec="python:m:a", with_layers=False, with_breakdowns=False)
+    blind = make_result(seed=2, name="blank net", spec="python:m:b", with_layers=False, with_breakdowns=False)
+    blind["metrics"] = blind_metrics()
+    blind["warnings"] = ["a repeated warning", "a repeated warning"]
+    page = render_report([blind, good])
+    summary = _section(page, "summary")
+    assert summary.index("bench CNN</a>") < summary.index("blank net</a>")
+    assert "collapsed: constant features" in summary and "blank net has collapsed" in summary
+    assert _section(page, "warnings").count("a repeated warning") == 1

@@ -32,6 +32,12 @@ def _light(seed, name, **kw):
                        with_breakdowns=False, **kw)
 
 
+def _unlabelled(result):
+    """``result`` without task labels: the ranking then falls back to invariance."""
+    result["metrics"].pop("probe", None)
+    return result
+
+
 def _with(result, accuracy=None, drift=None):
     if accuracy is not None:
         result["metrics"]["domain_classifier"]["accuracy"] = accuracy
@@ -118,26 +124,37 @@ def test_make_comparison_adds_dataset_warning_once_and_normalises_failures():
     assert first["failures"] == [{"spec": "torchscript:x.pt", "name": "torchscript:x.pt", "error": "boom"}]
 
 
-def test_rank_lower_domain_accuracy_first():
-    results = [_with(_light(i, str(i)), accuracy=acc) for i, acc in enumerate([0.9, 0.55, 0.7])]
+def test_without_labels_rank_lower_domain_accuracy_first():
+    results = [_unlabelled(_with(_light(i, str(i)), accuracy=acc)) for i, acc in enumerate([0.9, 0.55, 0.7])]
     assert rank_results(results) == [1, 2, 0]
+
+
+def test_with_labels_rank_by_task_information_not_by_invariance():
+    # b is the most invariant (0.55) because its probes lost the task on cluttered views.
+    a, b = _light(1, "a"), _light(2, "b")
+    a = _with(a, accuracy=0.8)
+    b = _with(b, accuracy=0.55)
+    for task in ("part", "x"):
+        b["metrics"]["probe"][task]["cluttered"] = b["metrics"]["probe"][task]["baseline"]
+    assert rank_results([b, a]) == [1, 0]
 
 
 def test_rank_ties_at_three_decimals_broken_by_drift():
     results = [
-        _with(_light(1, "a"), accuracy=0.6001, drift=0.4),
-        _with(_light(2, "b"), accuracy=0.6004, drift=0.2),
-        _with(_light(3, "c"), accuracy=0.6010, drift=0.1),
+        _unlabelled(_with(_light(1, "a"), accuracy=0.6001, drift=0.4)),
+        _unlabelled(_with(_light(2, "b"), accuracy=0.6004, drift=0.2)),
+        _unlabelled(_with(_light(3, "c"), accuracy=0.6010, drift=0.1)),
     ]
     # a and b tie at 0.600, so b's lower drift wins; c is 0.601 and ranks after both.
     assert rank_results(results) == [1, 0, 2]
 
 
 def test_rank_not_computable_last_ordered_by_drift():
-    nc_high = _with(not_computable(_light(1, "nc_high"), "domain_classifier", "one class only"), drift=0.9)
-    nc_low = _with(not_computable(_light(2, "nc_low"), "domain_classifier", "one class only"), drift=0.1)
-    worst = _with(_light(3, "worst"), accuracy=0.99, drift=1.2)
-    no_drift = not_computable(not_computable(_light(4, "none"), "domain_classifier", "x"), "paired_drift", "y")
+    nc_high = _with(not_computable(_unlabelled(_light(1, "nc_high")), "domain_classifier", "one class only"), drift=0.9)
+    nc_low = _with(not_computable(_unlabelled(_light(2, "nc_low")), "domain_classifier", "one class only"), drift=0.1)
+    worst = _with(_unlabelled(_light(3, "worst")), accuracy=0.99, drift=1.2)
+    no_drift = not_computable(not_computable(_unlabelled(_light(4, "none")), "domain_classifier", "x"),
+                              "paired_drift", "y")
     assert rank_results([nc_high, no_drift, worst, nc_low]) == [2, 3, 0, 1]
 
 
@@ -219,3 +236,46 @@ def test_odd_but_in_range_results_still_load(tmp_path):
     result["metrics"]["mmd"] = {"mmd2": "high", "p_value": None}
     result["metrics"]["cka"] = {"not_computable": "too few pairs"}
     assert load_as_comparison([_write(tmp_path / "r.json", result)])["results"][0]["metrics"]["mmd"]["mmd2"] == "high"
+
+
+def test_debiased_cka_may_be_negative_but_linear_cka_may_not(tmp_path):
+    # Debiased CKA is a cosine of U-centred kernel matrices (Song et al., JMLR 2012): in [-1, 1].
+    result = _light(1, "a")
+    result["metrics"]["cka"] = -0.04
+    assert load_result_files([_write(tmp_path / "ok.json", result)])[0]["metrics"]["cka"] == -0.04
+    result["metrics"]["cka_linear"] = -0.04
+    with pytest.raises(InvarianceError, match=r"metrics\.cka_linear is -0\.04, outside \[0, 1\]"):
+        load_result_files([_write(tmp_path / "bad.json", result)])
+
+
+def test_caution_is_added_to_results_and_comparisons():
+    from invariance import SAFETY_CAUTION
+    from invariance.results import add_caution
+
+    comparison = add_caution(make_comparison([_light(1, "a"), _light(2, "b")]))
+    assert comparison["caution"] == SAFETY_CAUTION
+    assert all(r["caution"] == SAFETY_CAUTION for r in comparison["results"])
+    assert "ISO 10218" in add_caution(_light(3, "c"))["caution"]
+
+
+def test_a_checkpoint_scored_on_its_alignment_pairs_is_warned_about_once():
+    from invariance.results import aligned_on_same_pairs
+
+    result = _light(1, "aligned")
+    result["encoder"]["aligned_on"] = result["dataset"]["content_hash"]
+    warning = aligned_on_same_pairs(result)
+    assert warning and "scored on the pairs it was aligned on" in warning
+    comparison = make_comparison([result], warnings=[warning])
+    assert comparison["warnings"].count(warning) == 1
+    result["encoder"]["aligned_on"] = "sha256:another"
+    assert aligned_on_same_pairs(result) is None
+
+
+def test_a_copy_whose_alignment_did_not_improve_is_not_titled_aligned():
+    from invariance.results import display_name
+
+    result = _light(1, "workbench CNN, clean-only, aligned")
+    result["alignment"] = {"improved": False}
+    assert display_name(result) == "workbench CNN, clean-only (alignment did not improve it)"
+    result["alignment"]["improved"] = True
+    assert display_name(result) == "workbench CNN, clean-only, aligned"

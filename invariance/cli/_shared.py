@@ -19,8 +19,9 @@ from pathlib import Path
 
 import click
 
-from ..errors import InvalidParameter, InvarianceError
-from ..options import AlignmentOptions, ExtractionOptions, Gates, ScoringOptions
+from .. import SAFETY_CAUTION
+from ..errors import GateFailed, InvalidParameter, InvarianceError
+from ..options import OBJECTIVES, AlignmentOptions, ExtractionOptions, Gates, ScoringOptions
 
 ENCODER_HELP = (
     "Encoder spec: torchvision:NAME (random init), torchvision:NAME@WEIGHTS (torchvision weights "
@@ -65,22 +66,37 @@ def usage_error(exc: InvalidParameter) -> click.UsageError:
     return click.UsageError(printable(str(exc).replace(f"{exc.parameter}=", f"{flag} ", 1)))
 
 
-def _show_warning(message, category, filename, lineno, file=None, line=None):
-    """A warning as one ``warning: ...`` line on stderr, without the code location."""
-    say(f"warning: {message}", err=True)
+def _warning_printer():
+    """A ``warnings.showwarning`` that prints each distinct warning once, as one line on stderr."""
+    seen = set()
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        text = str(message)
+        if text not in seen:
+            seen.add(text)
+            say(f"warning: {text}", err=True)
+
+    return show
 
 
 def handle_errors(func):
-    """Library errors become one line on stderr and the documented exit code; warnings one line each."""
+    """Library errors become one line on stderr and the documented exit code; each warning once.
+
+    A gate that was not met is a result, not an error: its line is printed without
+    ``error:`` (the gate lines on stdout say which check failed) and the exit code is 3.
+    """
 
     @functools.wraps(func)
     def wrapper(*args, **kwargs):
         try:
             with warnings.catch_warnings():
-                warnings.showwarning = _show_warning
+                warnings.showwarning = _warning_printer()
                 return func(*args, **kwargs)
         except InvalidParameter as exc:
             raise usage_error(exc) from None
+        except GateFailed as exc:
+            say(str(exc).replace("\r", "\\r").replace("\n", "\\n"), err=True)
+            sys.exit(exc.exit_code)
         except InvarianceError as exc:
             # one line, even when a file name in the message holds a line break
             say("error: " + str(exc).replace("\r", "\\r").replace("\n", "\\n"), err=True)
@@ -193,15 +209,24 @@ def scoring_options(*, folds: bool = True, tsne: bool = True):
     return _option_group("scoring", options, lambda values: ScoringOptions(**values))
 
 
+GATE_CAUTION = ("Gates decide on the upper end of the 95% interval, check every scored layer, and fail on "
+                "collapsed or not computable measures. A passed gate is a regression check, not a safety "
+                "function: " + SAFETY_CAUTION)
+
+
 def gate_options(func):
-    """--max-domain-accuracy, --max-relative-drift, --max-probe-gap."""
+    """--max-domain-accuracy, --max-relative-drift, --max-probe-gap (help carries the caution)."""
     options = [
         ("max_domain_accuracy", click.option("--max-domain-accuracy", type=float,
-                                             help="Gate: exit 3 if held-out domain accuracy is above this (0-1).")),
+                                             help="Gate: exit 3 if the 95% upper end of held-out domain accuracy "
+                                                  "is above this (0-1), on any scored layer.")),
         ("max_relative_drift", click.option("--max-relative-drift", type=float,
-                                            help="Gate: exit 3 if relative drift is above this.")),
+                                            help="Gate: exit 3 if the 95% upper end of the mean relative drift is "
+                                                 "above this, on any scored layer.")),
         ("max_probe_gap", click.option("--max-probe-gap", type=float,
-                                       help="Gate: exit 3 if any probe's clean-minus-cluttered gap is above this.")),
+                                       help="Gate: exit 3 if the 95% upper end of any decodable probe's "
+                                            "clean-minus-cluttered gap (in its own unit: accuracy or R2) is above "
+                                            "this, on any scored layer. " + GATE_CAUTION)),
     ]
     return _option_group("gates", options, lambda values: Gates(**values))(func)
 
@@ -219,6 +244,8 @@ _ALIGNMENT_HELP = {
     "task_weight": "Weight of the task heads on clean labels.",
     "learning_rate": "Initial learning rate (Adam, annealed by the DANN schedule).",
     "guard_margin": "Stop when a clean probe falls more than this relative margin below its start (0-1).",
+    "objective": "Alignment objective: combined (gradient reversal plus paired and mean-matching terms), "
+                 "dann (gradient reversal only) or paired (paired and mean-matching terms only).",
 }
 
 
@@ -230,9 +257,10 @@ def alignment_options(func):
         if f.name == "batch_size":
             continue
         value = getattr(d, f.name)
-        kind = int if f.name == "steps" else (str if f.name == "train_from" else float)
+        kind = {"steps": int, "train_from": str, "objective": click.Choice(OBJECTIVES)}.get(f.name, float)
         options.append((f.name, click.option(flag_for(f.name), f.name, type=kind, default=value,
-                                             show_default=value is not None, help=_ALIGNMENT_HELP[f.name])))
+                                             show_default=value is not None,
+                                             help=_ALIGNMENT_HELP.get(f.name, f.name.replace("_", " ")))))
     return _option_group("alignment", options, lambda values: AlignmentOptions(**values))(func)
 
 
@@ -309,6 +337,9 @@ def write_result_outputs(result, *, json_path=None, report_path=None, drift_csv=
     (:func:`invariance._io.write_outputs_together`): a report that fails to render, or a
     disk that fills up, leaves none of them rather than a JSON without its report.
     """
+    from ..results import add_caution
+
+    add_caution(result)
     outputs = []
     if json_path:
         outputs.append((json_path, _json_text(result), "result JSON"))
@@ -321,6 +352,9 @@ def write_result_outputs(result, *, json_path=None, report_path=None, drift_csv=
 
 def write_comparison_outputs(comparison, *, json_path=None, report_path=None, tsne=False):
     """The comparison JSON and the HTML report of ``compare``, written together (all or none)."""
+    from ..results import add_caution
+
+    add_caution(comparison)
     outputs = []
     if json_path:
         outputs.append((json_path, _json_text(comparison), "comparison JSON"))

@@ -7,13 +7,29 @@ from pathlib import Path
 import click
 
 from ._print import print_ranking
-from ._shared import (ENCODER_HELP, EXIT_CODES_HELP, check_outputs, extraction_options, handle_errors,
-                      quiet_option, report_option, say, scoring_options)
+from ._shared import (ENCODER_HELP, EXIT_CODES_HELP, check_outputs, check_spec, extraction_options, handle_errors,
+                      quiet_option, report_option, scoring_options, write_comparison_outputs)
+
+
+def _paired(values, specs, flag: str) -> list:
+    """``values`` given once per --encoder, in order (or not at all); anything else is a usage error."""
+    if not values:
+        return [None] * len(specs)
+    if len(values) != len(specs):
+        raise click.UsageError(f"{flag} is given {len(values)} time(s) for {len(specs)} --encoder: give it once per "
+                               f"--encoder, in the same order (use --encoders FILE.toml to mix encoders with and "
+                               f"without it)")
+    return list(values)
 
 
 @click.command(epilog=EXIT_CODES_HELP)
 @click.argument("data", type=click.Path(path_type=Path))
-@click.option("--encoder", "specs", multiple=True, help=ENCODER_HELP + " Repeat for each encoder.")
+@click.option("--encoder", "specs", multiple=True, callback=check_spec,
+              help=ENCODER_HELP + " Repeat for each encoder.")
+@click.option("--weights", "weights", multiple=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="Local state_dict for the --encoder in the same position (repeat once per --encoder).")
+@click.option("--name", "names", multiple=True,
+              help="Display name for the --encoder in the same position (repeat once per --encoder).")
 @click.option("--encoders", "encoders_toml", type=click.Path(dir_okay=False, path_type=Path),
               help="TOML file with [[encoder]] tables (spec, weights, layers, name, image_size).")
 @click.option("--layer", "layers", multiple=True, help="Graph node to tap in every encoder given by --encoder.")
@@ -23,18 +39,22 @@ from ._shared import (ENCODER_HELP, EXIT_CODES_HELP, check_outputs, extraction_o
 @extraction_options
 @quiet_option
 @handle_errors
-def compare(data, specs, encoders_toml, layers, json_path, report_path, scoring, extraction, quiet):
+def compare(data, specs, weights, names, encoders_toml, layers, json_path, report_path, scoring, extraction, quiet):
     """Score several encoders on the same pairs, folds and permutations, and rank them.
 
-    Encoders that share a network reuse cached features. An encoder that fails midway is
-    shown in the report with its message; the others are still scored.
+    Encoders are ranked by the task information their features keep on cluttered views
+    (probes trained on clean), with invariance measures as evidence; ranks whose 95%
+    intervals overlap are shown as ties. Encoders that share a network reuse cached
+    features. An encoder that fails midway is shown in the report with its message; the
+    others are still scored.
     """
     from .. import pipeline
-    from .._io import atomic_write_json
     from ..encoder_list import read_encoder_list
     from ..options import EncoderEntry
 
-    entries = [EncoderEntry(s, layers=tuple(layers) or None) for s in specs]
+    weights, names = _paired(weights, specs, "--weights"), _paired(names, specs, "--name")
+    entries = [EncoderEntry(s, weights=w, layers=tuple(layers) or None, name=n)
+               for s, w, n in zip(specs, weights, names)]
     if encoders_toml:
         entries += read_encoder_list(encoders_toml)
     if not entries:
@@ -42,13 +62,5 @@ def compare(data, specs, encoders_toml, layers, json_path, report_path, scoring,
     check_outputs({"--json": json_path, "--report": report_path}, data=data, specs=[e.spec for e in entries],
                   files=[encoders_toml, *(e.weights for e in entries)])
     comparison = pipeline.compare_encoders(data, entries, extraction=extraction, scoring=scoring, progress=not quiet)
-    if json_path:
-        atomic_write_json(json_path, comparison)
-        say(f"comparison JSON: {json_path}")
-    if report_path:
-        from ..report import write_report
-
-        write_report(report_path, comparison["results"], failures=comparison["failures"],
-                     warnings=comparison["warnings"], tsne=scoring.tsne)
-        say(f"report: {report_path}")
+    write_comparison_outputs(comparison, json_path=json_path, report_path=report_path, tsne=scoring.tsne)
     print_ranking(comparison)

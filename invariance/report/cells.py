@@ -26,6 +26,9 @@ def entry(metrics: dict, name: str):
     """``(entry, reason)``: the metric's stored object, or ``None`` with why it is missing."""
     found = metrics.get(name) if isinstance(metrics, dict) else None
     if found is None:
+        reasons = metrics.get("not_computed") if isinstance(metrics, dict) else None
+        if isinstance(reasons, dict) and name in reasons:
+            return None, f"not computed: {reasons[name]}"
         return None, "not reported"
     if isinstance(found, dict) and "not_computable" in found:
         return None, f"not computable: {found['not_computable']}"
@@ -47,7 +50,8 @@ def accuracy_cell(metrics: dict) -> dict:
     if found is None or accuracy is None:
         return missing_cell(reason or "not reported")
     interval = ci(metrics, "domain_classifier", "ci")
-    reading = readings.read_domain_accuracy(accuracy, interval, small_sample=bool(found.get("small_sample")))
+    reading = readings.read_domain_accuracy(accuracy, interval, small_sample=bool(found.get("small_sample")),
+                                            pairs=readings.domain_pairs(found))
     return cell(readings.format_number(accuracy), reading, readings.format_interval(interval))
 
 
@@ -90,7 +94,7 @@ def retrieval_cell(metrics: dict) -> dict:
 
 
 def cka_cell(metrics: dict) -> dict:
-    """Linear CKA with its reading."""
+    """Debiased CKA with its reading."""
     _, reason = entry(metrics, "cka")
     value = metric_value(metrics, "cka")
     if value is None:
@@ -115,22 +119,49 @@ def probe_entries(metrics: dict) -> tuple[list[tuple[str, dict | None, str | Non
 
 
 def worst_gap(metrics: dict) -> tuple[str, float] | None:
-    """``(label, gap)`` of the probe that loses most under clutter, or ``None``."""
-    entries, _ = probe_entries(metrics)
-    gaps = [(task, readings.finite(found.get("gap"))) for task, found, _ in entries if found is not None]
-    gaps = [(task, gap) for task, gap in gaps if gap is not None]
-    return max(gaps, key=lambda item: item[1]) if gaps else None
+    """``(label, gap)`` of the decodable probe that loses most under clutter, or ``None``.
+
+    Tasks not decodable on clean are left out; accuracy and R^2 gaps are compared by the
+    upper end of their intervals (see :func:`invariance.verdict.worst_carried_gap`).
+    """
+    from invariance.verdict import worst_carried_gap
+
+    worst = worst_carried_gap(metrics)
+    if worst is None:
+        return None
+    gap = readings.finite(worst[1].get("gap"))
+    return None if gap is None else (worst[0], gap)
 
 
 def gap_cell(metrics: dict) -> dict:
-    """The worst probe gap, naming its label."""
-    worst = worst_gap(metrics)
+    """The worst decodable probe gap, naming its label and unit, with its interval."""
+    from invariance.verdict import worst_carried_gap
+
+    worst = worst_carried_gap(metrics)
     if worst is None:
         entries, reason = probe_entries(metrics)
+        if entries and all(found is not None and not readings.probe_decodable(found) for _, found, _ in entries):
+            return cell("", readings.Reading(readings.NOT_DECODABLE + " (every label)", "neutral"))
         reasons = [why for _, _, why in entries if why]
         return missing_cell(reason or (reasons[0] if reasons else "no probe"))
-    task, gap = worst
-    return cell(readings.format_number(gap), readings.read_probe_gap(gap), f"on {task}")
+    task, found = worst
+    interval = readings.format_interval(found.get("gap_ci"))
+    return cell(f"{readings.format_number(found.get('gap'))} {readings.gap_unit(found)}",
+                readings.read_probe(found), f"on {task} {interval}".strip())
+
+
+def information_cell(assessment) -> dict:
+    """Task information on cluttered views (an :class:`invariance.verdict.Assessment`)."""
+    if assessment.collapsed:
+        return cell("", readings.Reading("collapsed: constant features", "bad"))
+    info = assessment.information
+    if info is None:
+        return missing_cell("no decodable task label")
+    reading = readings.read_task_information(info.value)
+    if assessment.label and assessment.label not in reading.words:
+        reading = readings.Reading(f"{reading.words}; {assessment.label}", "bad")
+    return cell(readings.format_number(info.value), reading,
+                f"[{readings.format_number(info.low)}, {readings.format_number(info.high)}]")
 
 
 def gates(result: dict) -> tuple[list[str], list[str]]:
@@ -151,13 +182,14 @@ def gates_cell(result: dict) -> dict:
     return cell(f"all {len(met)} met")
 
 
-def metric_rows(metrics: dict) -> list[tuple[str, dict]]:
-    """``(label, cell)`` for the six whole-data-set metrics, in the order the report shows them."""
+def metric_rows(metrics: dict) -> list[tuple[str, str, dict]]:
+    """``(label, note anchor, cell)`` for the six whole-data-set metrics, in report order."""
+    notes = readings.NOTE_ANCHORS
     return [
-        ("Domain accuracy [95% interval]", accuracy_cell(metrics)),
-        ("Proxy A-distance", pad_cell(metrics)),
-        ("MMD\u00b2 (p)", mmd_cell(metrics)),
-        ("Relative drift [95% interval]", drift_cell(metrics)),
-        ("Pair retrieval (top-1)", retrieval_cell(metrics)),
-        ("CKA", cka_cell(metrics)),
+        ("Domain accuracy [95% interval]", notes["domain_accuracy"], accuracy_cell(metrics)),
+        ("Proxy A-distance", notes["proxy_a_distance"], pad_cell(metrics)),
+        ("MMD\u00b2 (p; own bandwidth)", notes["mmd"], mmd_cell(metrics)),
+        ("Mean relative drift [95% interval]", notes["relative_drift"], drift_cell(metrics)),
+        ("Pair retrieval (top-1)", notes["pair_retrieval"], retrieval_cell(metrics)),
+        ("CKA, debiased", notes["cka"], cka_cell(metrics)),
     ]

@@ -14,7 +14,8 @@ from invariance.report import cells
 from invariance.report.charts import comparison_figures
 from invariance.report.encoder import as_list, drift_values, encoder_section, pair_figure
 from invariance.report.thumbnails import Thumbnails
-from invariance.results import check_same_dataset, display_name, metric_value, rank_results
+from invariance import verdict as _verdict_rules
+from invariance.results import aligned_on_same_pairs, check_same_dataset, display_name
 
 # Example pairs shown per data set: a glimpse of what clean and cluttered mean here
 # (common practice).
@@ -45,8 +46,9 @@ def page_context(comparison: dict, *, title: str | None, thumbnails: Thumbnails,
         One entry per section of the page.
     """
     results = comparison["results"]
-    order = rank_results(results)
-    rank = {index: position + 1 for position, index in enumerate(order)}
+    ranking = _verdict_rules.rank(results)
+    order = ranking.order
+    rank = {i: ranking.shown_rank(i) for i in order}
     names = [display_name(r) for r in results]
     datasets = _datasets(results)
     today = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
@@ -58,10 +60,11 @@ def page_context(comparison: dict, *, title: str | None, thumbnails: Thumbnails,
         "datasets": [{"path": str(d["path"]), "pairs": str(d["pairs"])} for d in datasets],
         "encoder_count": len(results),
         "warnings": _warnings(comparison["warnings"], results),
-        "nav": [(f"encoder-{i}", f"{rank[i]}. {names[i]}") for i in order],
-        "summary": _summary(results, order, rank, names),
+        "nav": [(f"encoder-{i}", f"{rank[i]} {names[i]}") for i in order],
+        "summary": _summary(results, ranking, names),
         "charts": comparison_figures([names[i] for i in order],
-                                     [results[i].get("metrics") or {} for i in order]) if results else None,
+                                     [results[i].get("metrics") or {} for i in order],
+                                     information=[ranking.assessments[i] for i in order]) if results else None,
         "encoders": [encoder_section(results[i], index=i, rank=rank[i], name=names[i], thumbnails=thumbnails,
                                      tsne=tsne) for i in order],
         "failures": [{k: str(f[k]) for k in ("name", "spec", "error")} for f in comparison["failures"]],
@@ -77,10 +80,14 @@ def _default_title(results: list[dict]) -> str:
 
 
 def _warnings(warnings: list[str], results: list[dict]) -> list[str]:
+    """Run-level and per-encoder warnings, each once."""
     items = [str(w) for w in warnings]
     for result in results:
         items += [f"{display_name(result)}: {w}" for w in as_list(result.get("warnings"))]
-    return items
+        overlap = aligned_on_same_pairs(result)
+        if overlap:
+            items.append(overlap)
+    return list(dict.fromkeys(items))
 
 
 def _datasets(results: list[dict]) -> list[dict]:
@@ -96,88 +103,44 @@ def _datasets(results: list[dict]) -> list[dict]:
 
 # ---------------------------------------------------------------- summary
 
-def _summary(results: list[dict], order: list[int], rank: dict, names: list[str]) -> dict | None:
+def _summary(results: list[dict], ranking, names: list[str]) -> dict | None:
     if not results:
         return None
     rows = []
-    for i in order:
+    for i in ranking.order:
         metrics = results[i].get("metrics") or {}
+        assessment = ranking.assessments[i]
         rows.append({
-            "index": i, "rank": rank[i], "name": names[i],
+            "index": i, "rank": ranking.shown_rank(i), "name": names[i], "label": assessment.label,
             "spec": str((results[i].get("encoder") or {}).get("spec", "")),
-            "cells": [cells.accuracy_cell(metrics), cells.pad_cell(metrics), cells.mmd_cell(metrics),
-                      cells.drift_cell(metrics), cells.retrieval_cell(metrics), cells.cka_cell(metrics),
-                      cells.gap_cell(metrics), cells.gates_cell(results[i])],
+            "cells": [cells.information_cell(assessment), cells.gap_cell(metrics), cells.accuracy_cell(metrics),
+                      cells.pad_cell(metrics), cells.mmd_cell(metrics), cells.drift_cell(metrics),
+                      cells.retrieval_cell(metrics), cells.cka_cell(metrics), cells.gates_cell(results[i])],
         })
-    return {"verdict": _verdict(results, order, names), "rows": rows}
+    return {"verdict": _verdict(results, ranking, names), "rows": rows,
+            "basis": ranking.basis, "task_basis": ranking.basis == _verdict_rules.TASK_BASIS,
+            "carried": ", ".join(ranking.carried), "floor": readings.format_number(_verdict_rules.SKILL_FLOOR, 1)}
 
 
 def _text(text: str, strong: bool = False) -> dict:
     return {"text": text, "strong": strong}
 
 
-def _verdict(results: list[dict], order: list[int], names: list[str]) -> list[list[dict]]:
-    """One paragraph in plain words: who ranks first, how sure, and what it means.
+def _verdict(results: list[dict], ranking, names: list[str]) -> list[list[dict]]:
+    """The verdict of :func:`invariance.verdict.verdict` plus the gates and data set remarks.
 
     Sentences are lists of ``{"text", "strong"}`` pieces so that the template, not this
     code, decides which words are set in bold.
     """
-    best = order[0]
-    sentences = [_verdict_best(results[best].get("metrics") or {}, names[best])]
-    worst = cells.worst_gap(results[best].get("metrics") or {})
-    if worst is not None:
-        task, gap = worst
-        sentences.append([_text(f"Its largest loss of task information under clutter is "
-                                f"{readings.format_number(gap)} on \u201c{task}\u201d "
-                                f"({readings.read_probe_gap(gap).words}).")])
-    if len(order) > 1:
-        sentences.append([_text(_verdict_runner_up(results, best, order[1], names[order[1]]))])
-    failed = [names[i] for i in order if cells.gates(results[i])[1]]
+    sentences = [[_text(text, strong) for text, strong in sentence]
+                 for sentence in _verdict_rules.verdict(results, ranking, names)]
+    failed = [names[i] for i in ranking.order if cells.gates(results[i])[1]]
     if failed:
         sentences.append([_text(f"Gates failed for: {', '.join(failed)}.")])
     if len(results) > 1 and check_same_dataset(results):
         sentences.append([_text("The encoders were measured on different data sets", strong=True),
                           _text(" (see Warnings), so this ranking is not a like-for-like comparison.")])
     return sentences
-
-
-def _verdict_best(metrics: dict, name: str) -> list[dict]:
-    accuracy = metric_value(metrics, "domain_classifier", "accuracy")
-    drift = metric_value(metrics, "paired_drift", "relative_drift")
-    if accuracy is None:
-        return [_text(f"No encoder has a computable domain accuracy; {name} is listed first by relative drift. "
-                      "Read the reasons in the table before drawing conclusions.")]
-    ci = cells.ci(metrics, "domain_classifier", "ci")
-    text = (f" ranks first: a linear classifier tells its clean and cluttered features apart on "
-            f"{readings.format_number(accuracy)} of held-out images "
-            f"(95% interval {readings.format_interval(ci)}; 0.5 would be chance)")
-    if drift is not None:
-        text += (f", and clutter moves a scene\u2019s feature {readings.format_number(drift, 2)} of the way to a "
-                 "different scene")
-    words = readings.read_domain_accuracy(accuracy, ci).words
-    separated = readings.separates_domains(ci)
-    if separated:
-        text += f". Even so, clutter is still detectable in its features ({words})."
-    elif words == readings.CLOSE_TO_CHANCE:
-        text += ". On this data its clean and cluttered features could not be told apart."
-    else:
-        text += f". Read its domain accuracy with care ({words})."
-    return [_text(name, strong=True), _text(text)]
-
-
-def _verdict_runner_up(results: list[dict], best: int, second: int, name: str) -> str:
-    a = cells.ci(results[best].get("metrics") or {}, "domain_classifier", "ci")
-    b = cells.ci(results[second].get("metrics") or {}, "domain_classifier", "ci")
-    text = f"Next is {name}"
-    accuracy = metric_value(results[second].get("metrics") or {}, "domain_classifier", "accuracy")
-    if accuracy is not None:
-        text += f" at {readings.format_number(accuracy)} {readings.format_interval(b)}"
-    if a is None or b is None:
-        return text + "."
-    if a[0] <= b[1] and b[0] <= a[1]:
-        return text + ("; the two intervals overlap, so this data does not settle the order "
-                       "between them (more pairs would narrow the intervals).")
-    return text + "; the intervals do not overlap, so the first place is clear on this data."
 
 
 # ---------------------------------------------------------------- closing sections

@@ -77,9 +77,12 @@ def _guarded(build: Callable[[], object]) -> dict:
 def _facts(result: dict) -> list[tuple[str, str]]:
     encoder = result.get("encoder") or {}
     sha = encoder.get("weights_sha256")
+    weights = encoder.get("weights")
+    if weights is None and str(encoder.get("spec", "")).startswith("torchvision:") and "@" not in str(encoder["spec"]):
+        weights = "random initialisation (seeded): a random-weights reference, not a trained encoder"
     facts = [
         ("Spec", encoder.get("spec")), ("Layer", encoder.get("layer")), ("Architecture", encoder.get("arch")),
-        ("Weights", encoder.get("weights")), ("Weights SHA-256", sha[:16] + "\u2026" if isinstance(sha, str) else None),
+        ("Weights", weights), ("Weights SHA-256", sha[:16] + "\u2026" if isinstance(sha, str) else None),
         ("Preprocessing", json.dumps(encoder["preprocess"], sort_keys=True) if encoder.get("preprocess") else None),
     ]
     return [(k, str(v)) for k, v in facts if v is not None]
@@ -106,16 +109,27 @@ def _probe_table(metrics: dict) -> dict:
     entries, reason = cells.probe_entries(metrics)
     rows = []
     for task, found, why in entries:
-        row = {"task": task, "missing": why, "kind": "", "clean": "", "cluttered": "", "gap": None}
+        row = {"task": task, "missing": why, "kind": "", "clean": "", "cluttered": "", "baseline": "", "gap": None}
         if found is not None:
-            gap = readings.finite(found.get("gap"))
-            row.update(kind=f"{found.get('kind', '')}, {found.get('metric', '')}",
+            row.update(kind=f"{found.get('kind', '')}, {readings.gap_unit(found)}",
                        clean=readings.format_number(found.get("clean")),
                        cluttered=readings.format_number(found.get("cluttered")),
-                       gap=(cells.cell(readings.format_number(gap), readings.read_probe_gap(gap))
-                            if gap is not None else cells.missing_cell("no gap")))
+                       baseline=readings.format_number(found.get("baseline")),
+                       gap=_probe_gap_cell(found))
         rows.append(row)
     return {"reason": reason, "rows": rows}
+
+
+def _probe_gap_cell(found: dict) -> dict:
+    gap = readings.finite(found.get("gap"))
+    if gap is None:
+        return cells.missing_cell("no gap")
+    reading = readings.read_probe(found)
+    if reading.words == readings.NOT_DECODABLE:
+        return cells.cell(f"{readings.format_number(gap)} {readings.gap_unit(found)}", reading,
+                          "left out of the worst gap and the gate")
+    return cells.cell(f"{readings.format_number(gap)} {readings.gap_unit(found)}", reading,
+                      readings.format_interval(found.get("gap_ci")))
 
 
 def _view(fig: dict | None = None, missing: str | None = None) -> dict:
@@ -159,8 +173,10 @@ def _drift_view(result: dict) -> dict:
     if not values:
         return _view(missing="No per-pair drift in this result.")
     worst = _worst(result)
-    png = plots.drift_histogram([d for _, d in values], worst_from=worst[-1][1] if worst else None)
-    return _view(figure(png, "histogram of per-pair relative drift"))
+    mean = metric_value(result.get("metrics") or {}, "paired_drift", "relative_drift")
+    png = plots.drift_histogram([d for _, d in values], worst_from=worst[-1][1] if worst else None, mean=mean)
+    return _view(figure(png, "histogram of per-pair relative drift",
+                        "The headline drift is the mean over pairs (solid line); the dashed black line is the median."))
 
 
 def pair_figure(thumbnails: Thumbnails, dataset: dict, name: str, caption: str) -> dict:
@@ -189,8 +205,8 @@ def _layers(result: dict) -> dict | None:
     names = list(layers)
     series = {
         "domain accuracy": [metric_value(layers[n], "domain_classifier", "accuracy") for n in names],
-        "relative drift": [metric_value(layers[n], "paired_drift", "relative_drift") for n in names],
-        "CKA": [metric_value(layers[n], "cka") for n in names],
+        "mean relative drift": [metric_value(layers[n], "paired_drift", "relative_drift") for n in names],
+        "CKA, debiased": [metric_value(layers[n], "cka") for n in names],
     }
     png = plots.line_profile(names, series, xlabel="layer (network order, input to output)",
                              ylabel="value (accuracy, drift, CKA)", title="Where invariance is lost",
@@ -208,32 +224,84 @@ def _level_key(value: str):
         return (1, 0.0, value)
 
 
+def _breakdown_figures(breakdowns: dict, columns: list[str], xlabel: str, zero_off: bool) -> list:
+    """Domain accuracy and drift over the values of ``columns`` (factors share an axis, level has its own)."""
+    levels = sorted({str(v) for c in columns for v in breakdowns[c]}, key=_level_key)
+    ticks = [f"{v}\n(off, others on)" if zero_off and v == "0" else v for v in levels]
+    figures = []
+    for metric, key, ylabel in (("domain_classifier", "accuracy", plots.ACCURACY_LABEL),
+                                ("paired_drift", "relative_drift", plots.DRIFT_LABEL)):
+        series = {column: [_breakdown_value(breakdowns[column], level, metric, key) for level in levels]
+                  for column in columns}
+        chance = metric == "domain_classifier"
+        png = plots.line_profile(ticks, series, xlabel=xlabel, ylabel=ylabel,
+                                 title=f"{ylabel.split(' (')[0].capitalize()} by {xlabel.split(' (')[0]}",
+                                 reference=readings.CHANCE if chance else None,
+                                 reference_label="chance" if chance else None)
+        figures.append(figure(png, f"breakdown of {key} by {xlabel}"))
+    return figures
+
+
 def _breakdowns(result: dict) -> dict | None:
     breakdowns = result.get("breakdowns")
     if not isinstance(breakdowns, dict) or not breakdowns:
         return None
-    levels = sorted({str(v) for b in breakdowns.values() if isinstance(b, dict) for v in b}, key=_level_key)
+    columns = [c for c, groups in breakdowns.items() if isinstance(groups, dict)]
+    factors = [c for c in columns if c != "level"]
     figures = []
-    for metric, key, ylabel in (("domain_classifier", "accuracy", plots.ACCURACY_LABEL),
-                                ("paired_drift", "relative_drift", plots.DRIFT_LABEL)):
-        series = {factor: [_breakdown_value(groups, level, metric, key) for level in levels]
-                  for factor, groups in breakdowns.items() if isinstance(groups, dict)}
-        chance = metric == "domain_classifier"
-        png = plots.line_profile(levels, series, xlabel="factor value or clutter level", ylabel=ylabel,
-                                 title=f"Dose-response: {ylabel.split(' (')[0]} by factor",
-                                 reference=readings.CHANCE if chance else None,
-                                 reference_label="chance" if chance else None)
-        figures.append(figure(png, f"breakdown of {key} by factor"))
+    if factors:
+        figures += _breakdown_figures(breakdowns, factors, "factor severity (0 = this factor off, the others on)",
+                                      zero_off=True)
+    if "level" in columns:
+        figures += _breakdown_figures(breakdowns, ["level"], "clutter level (every active factor)", zero_off=False)
     rows = []
-    for factor, groups in breakdowns.items():
-        if not isinstance(groups, dict):
-            continue
+    for factor in columns:
+        groups = breakdowns[factor]
         for level in sorted(groups, key=lambda v: _level_key(str(v))):
             group = groups[level] if isinstance(groups[level], dict) else {}
             metrics = group.get("metrics") or {}
-            rows.append({"factor": str(factor), "level": str(level), "pairs": str(group.get("pairs", readings.DASH)),
-                         "cells": [cells.accuracy_cell(metrics), cells.drift_cell(metrics), cells.cka_cell(metrics)]})
-    return {"figures": [f for f in figures if f is not None], "rows": rows}
+            off = factor != "level" and str(level) == "0"
+            shown = f"{level} (this factor off, the others on)" if off else str(level)
+            rows.append({"factor": str(factor), "level": shown, "pairs": str(group.get("pairs", readings.DASH)),
+                         "cells": [cells.accuracy_cell(metrics), cells.drift_cell(metrics), cells.cka_cell(metrics),
+                                   _adjusted_cell(metrics)]})
+    return {"figures": [f for f in figures if f is not None], "rows": rows,
+            "correction": _correction(result.get("breakdowns_correction")),
+            "skipped": _skipped(result.get("breakdowns_skipped"))}
+
+
+def _adjusted_cell(metrics: dict) -> dict:
+    """The domain test's Holm-adjusted p-value beside the raw one."""
+    found, reason = cells.entry(metrics, "domain_classifier")
+    if found is None:
+        return cells.missing_cell(reason or "not reported")
+    raw, adjusted = found.get("p_value"), found.get("p_value_adjusted")
+    if readings.finite(adjusted) is None:
+        return cells.cell(readings.format_p_value(raw))
+    reading = readings.Reading("differs after correction", "bad") if adjusted < readings.ALPHA else \
+        readings.Reading("not significant after correction", "neutral")
+    return cells.cell(readings.format_p_value(adjusted), reading, f"raw {readings.format_p_value(raw)}")
+
+
+def _correction(stored) -> str | None:
+    if not isinstance(stored, dict):
+        return None
+    tests = stored.get("tests") if isinstance(stored.get("tests"), dict) else {}
+    counted = ", ".join(f"{k.replace('_', ' ')}: {v} subgroups" for k, v in tests.items())
+    return (f"p-values adjusted by the {str(stored.get('method', '')).capitalize()} method across subgroups"
+            f"{' (' + counted + ')' if counted else ''}; {stored.get('reference', '')}").strip("; ")
+
+
+def _skipped(stored) -> list[str]:
+    if not isinstance(stored, list):
+        return []
+    out = []
+    for item in stored:
+        if isinstance(item, dict):
+            out.append(", ".join(f"{k} {v}" for k, v in item.items()))
+        else:
+            out.append(str(item))
+    return out
 
 
 def _breakdown_value(groups: dict, level: str, metric: str, key: str) -> float | None:
@@ -250,14 +318,16 @@ def _alignment(result: dict) -> dict | None:
     before = alignment.get("before") or {}
     after = alignment.get("after") or {}
     builders = (("Domain accuracy", cells.accuracy_cell), ("Proxy A-distance", cells.pad_cell),
-                ("MMD\u00b2 (p)", cells.mmd_cell), ("Relative drift", cells.drift_cell),
-                ("Pair retrieval", cells.retrieval_cell), ("CKA", cells.cka_cell),
+                ("MMD\u00b2 (p; own bandwidth)", cells.mmd_cell), ("Mean relative drift", cells.drift_cell),
+                ("Pair retrieval", cells.retrieval_cell), ("CKA, debiased", cells.cka_cell),
                 ("Worst probe gap", cells.gap_cell))
     curves = alignment.get("curves") or {}
     png = plots.alignment_curves(curves) if isinstance(curves, dict) else None
     held_out = alignment.get("held_out_pairs")
     return {
         "rows": [(label, build(before), build(after)) for label, build in builders],
+        "improved": alignment.get("improved") is not False,
+        "cut_short": bool(alignment.get("cut_short")),
         "held_out": str(held_out) if held_out is not None else "the",
         "checkpoint": str(alignment["checkpoint"]) if alignment.get("checkpoint") else None,
         "figure": figure(png, "alignment training curves", "Training curves: domain accuracy, losses, \u03bb."),
@@ -271,6 +341,16 @@ def _gates(result: dict) -> list[dict] | None:
     rows = []
     for name, gate in stored.items():
         gate = gate if isinstance(gate, dict) else {}
-        rows.append({"name": str(name), "threshold": readings.format_number(gate.get("threshold")),
-                     "value": readings.format_number(gate.get("value")), "passed": bool(gate.get("passed"))})
+        checks = gate.get("checks") if isinstance(gate.get("checks"), list) else [
+            {"layer": gate.get("layer", (result.get("encoder") or {}).get("layer")), "task": gate.get("task"),
+             "metric": name, "value": gate.get("value"), "bound": gate.get("bound"), "passed": gate.get("passed")}]
+        for check in checks:
+            check = check if isinstance(check, dict) else {}
+            rows.append({"name": str(name), "threshold": readings.format_number(gate.get("threshold")),
+                         "where": f"{check.get('metric', name)}{', ' + str(check['task']) if check.get('task') else ''}"
+                                  f", layer {check.get('layer', readings.DASH)}",
+                         "value": readings.format_number(check.get("value")),
+                         "bound": readings.format_number(check.get("bound")) if check.get("bound") is not None
+                         else str(check.get("reason", readings.DASH)),
+                         "passed": bool(check.get("passed"))})
     return rows

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import base64
 import io
+import textwrap
 from typing import Sequence
 
 import numpy as np
@@ -36,8 +37,16 @@ _LINE_STYLES = ("-", "--", "-.", ":")
 
 ACCURACY_LABEL = "accuracy (fraction of held-out images)"
 DRIFT_LABEL = "relative drift (1 = as far as a different scene)"
-CKA_LABEL = "linear CKA (1 = same representation)"
-MMD_LABEL = "MMD\u00b2 (unbiased, Gaussian kernel)"
+CKA_LABEL = "debiased CKA (1 = same, 0 = unrelated)"
+MMD_LABEL = "MMD\u00b2 (each encoder's own bandwidth)"
+INFORMATION_LABEL = "task skill on cluttered views (0 = baseline, 1 = perfect)"
+
+# Font sizes in points: 8 pt is the smallest that stays legible at the report's 100 dpi
+# on a laptop screen and in print (common practice).
+_TICK_PT = 8
+_LABEL_PT = 9
+_TITLE_PT = 10
+_LEGEND_PT = 8
 
 # Small figures at ~100 dpi keep a many-encoder report a few hundred kilobytes.
 _DPI = 100
@@ -97,12 +106,14 @@ def bar_with_intervals(labels: Sequence[str], values: Sequence[float | None],
     if reference is not None:
         ax.axhline(reference, color=NEUTRAL, linestyle="--", linewidth=1, label=reference_label)
         if reference_label:
-            ax.legend(fontsize=7, loc="lower right", frameon=False)
+            # Above the axes, outside them: a legend inside would cover a bar.
+            ax.legend(fontsize=_LEGEND_PT, loc="lower right", bbox_to_anchor=(1.0, 1.0), frameon=False,
+                      borderaxespad=0.1)
     if ylim is not None:
         ax.set_ylim(*ylim)
     _categorical_axis(ax, x, labels)
-    ax.set_ylabel(ylabel, fontsize=8)
-    ax.set_title(_plain(title), fontsize=9)
+    ax.set_ylabel(_wrap(ylabel, 34), fontsize=_LABEL_PT)
+    ax.set_title(_plain(title), fontsize=_TITLE_PT, loc="left")
     return _png(fig)
 
 
@@ -134,12 +145,14 @@ def probe_chart(labels: Sequence[str], clean: Sequence[float | None], cluttered:
         heights = [v if v is not None else 0.0 for v in values]
         ax.bar(x + offset, heights, width=width, color=colour, label=name, hatch=hatch,
                edgecolor="white", linewidth=0.5)
-    unit = "accuracy (fraction of held-out images)" if metric == "accuracy" else f"{metric} (held-out scenes)"
-    ax.set_ylabel(unit, fontsize=8)
-    ax.set_title(f"Probe '{_short(task, 24)}': held-out clean vs cluttered", fontsize=9)
+    unit = ACCURACY_LABEL if metric == "accuracy" else "R\u00b2 (held-out scenes)"
+    ax.set_ylabel(_wrap(unit, 34), fontsize=_LABEL_PT)
+    ax.set_title(f"Probe '{_short(task, 40)}': held-out clean vs cluttered", fontsize=_TITLE_PT, loc="left")
     top = max([v for v in list(clean) + list(cluttered) if v is not None] + [0.0])
-    ax.set_ylim(top=max(1.0, top) * 1.18)  # headroom so the legend never covers a bar
-    ax.legend(fontsize=7, frameon=False, loc="upper center", ncol=2)
+    ax.set_ylim(top=max(1.0, top) * 1.05)
+    # Above the axes, outside them, so the legend never covers a bar.
+    ax.legend(fontsize=_LEGEND_PT, frameon=False, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=2,
+              borderaxespad=0.1)
     _categorical_axis(ax, x, labels)
     return _png(fig)
 
@@ -184,8 +197,9 @@ def projection_chart(clean: np.ndarray, cluttered: np.ndarray, *, method: str = 
     return _png(fig)
 
 
-def drift_histogram(drifts: Sequence[float], *, worst_from: float | None = None) -> bytes:
-    """Histogram of per-pair relative drift, with the median and the worst-pair cut marked.
+def drift_histogram(drifts: Sequence[float], *, worst_from: float | None = None,
+                    mean: float | None = None) -> bytes:
+    """Histogram of per-pair relative drift, with the mean, the median and the worst-pair cut marked.
 
     Parameters
     ----------
@@ -193,6 +207,8 @@ def drift_histogram(drifts: Sequence[float], *, worst_from: float | None = None)
         Relative drift of every pair.
     worst_from : float, optional
         Smallest drift among the worst pairs shown as thumbnails.
+    mean : float, optional
+        The headline (mean) relative drift; by default the mean of ``drifts``.
 
     Returns
     -------
@@ -204,14 +220,16 @@ def drift_histogram(drifts: Sequence[float], *, worst_from: float | None = None)
     if values.size:
         ax.hist(values, bins=min(30, max(5, values.size // 4)), color=PAIRS, alpha=0.9)
         median = float(np.median(values))
-        ax.axvline(median, color="#000000", linewidth=1, label=f"median {median:.2f}")
+        mean = float(values.mean()) if mean is None else float(mean)
+        ax.axvline(mean, color="#000000", linewidth=1.4, label=f"mean {mean:.3f} (headline)")
+        ax.axvline(median, color="#000000", linestyle="--", linewidth=1, label=f"median {median:.3f}")
     if worst_from is not None:
         ax.axvline(worst_from, color=CLUTTERED, linestyle="--", linewidth=1, label="worst pairs shown below")
     ax.axvline(1.0, color=NEUTRAL, linestyle=":", linewidth=1, label="as far as a different scene")
-    ax.set_xlabel(DRIFT_LABEL, fontsize=8)
-    ax.set_ylabel("pairs (count)", fontsize=8)
-    ax.set_title("How far clutter moves each scene's feature", fontsize=9)
-    ax.legend(fontsize=7, frameon=False)
+    ax.set_xlabel(DRIFT_LABEL, fontsize=_LABEL_PT)
+    ax.set_ylabel("pairs (count)", fontsize=_LABEL_PT)
+    ax.set_title("How far clutter moves each scene's feature", fontsize=_TITLE_PT, loc="left")
+    ax.legend(fontsize=_LEGEND_PT, frameon=False, loc="upper left", bbox_to_anchor=(1.0, 1.0))
     return _png(fig)
 
 
@@ -244,20 +262,20 @@ def line_profile(xlabels: Sequence[str], series: dict[str, Sequence[float | None
     for i, (name, values) in enumerate(series.items()):
         y = np.array([v if v is not None else np.nan for v in values], dtype=float)
         ax.plot(x, y, marker=markers[i % len(markers)], markersize=4, linewidth=1.4,
-                color=SERIES[i % len(SERIES)], label=_short(name, 30))
+                color=SERIES[i % len(SERIES)], label=_wrap(name, 30))
     if reference is not None:
         ax.axhline(reference, color=NEUTRAL, linestyle="--", linewidth=1, label=reference_label)
     ax.set_xticks(x)
-    rotate = 30 if max((len(s) for s in xlabels), default=0) > 6 or len(xlabels) > 8 else 0
-    ax.set_xticklabels([_short(s, 18) for s in xlabels], fontsize=7, rotation=rotate,
+    longest = max((len(line) for s in xlabels for line in str(s).split("\n")), default=0)
+    rotate = 30 if (longest > 6 or len(xlabels) > 8) and "\n" not in "".join(map(str, xlabels)) else 0
+    ax.set_xticklabels([_wrap(s, 18) for s in xlabels], fontsize=_TICK_PT, rotation=rotate,
                        ha="right" if rotate else "center")
-    ax.set_xlabel(xlabel, fontsize=8)
-    ax.set_ylabel(ylabel, fontsize=8)
-    ax.set_title(_plain(title), fontsize=9)
+    ax.set_xlabel(_wrap(xlabel, 60), fontsize=_LABEL_PT)
+    ax.set_ylabel(_wrap(ylabel, 34), fontsize=_LABEL_PT)
+    ax.set_title(_plain(title), fontsize=_TITLE_PT, loc="left")
     if ax.get_legend_handles_labels()[0]:
-        # Below the axes: lines near the top (CKA close to 1) must stay readable.
-        ax.legend(fontsize=7, frameon=False, loc="upper center", bbox_to_anchor=(0.5, -0.28),
-                  ncol=min(4, len(series) + (reference is not None)))
+        # Right of the axes: lines near the top (CKA close to 1) and the x labels stay readable.
+        ax.legend(fontsize=_LEGEND_PT, frameon=False, loc="upper left", bbox_to_anchor=(1.01, 1.0))
     return _png(fig)
 
 
@@ -347,14 +365,14 @@ def _png(fig: Figure, *, tight: bool = True) -> bytes:
 
 
 def _bar_size(count: int) -> tuple[float, float]:
-    return (max(3.6, min(7.2, 1.6 + 0.9 * count)), 3.0)
+    return (max(4.2, min(8.0, 1.8 + 1.2 * count)), 3.6)
 
 
 def _categorical_axis(ax, x: np.ndarray, labels: Sequence[str]) -> None:
+    # Whole names, wrapped onto lines instead of cut: two encoders that share a prefix
+    # ("workbench CNN, clean-only ...") must stay told apart.
     ax.set_xticks(x)
-    rotate = 20 if len(labels) > 3 or max((len(s) for s in labels), default=0) > 14 else 0
-    ax.set_xticklabels([_short(s, 22) for s in labels], fontsize=7, rotation=rotate,
-                       ha="right" if rotate else "center")
+    ax.set_xticklabels([_wrap(s, 16) for s in labels], fontsize=_TICK_PT)
     ax.set_xlim(-0.7, len(labels) - 0.3)
 
 
@@ -377,6 +395,12 @@ def _curve(values, length: int):
     if not values or len(values) != length:
         return None
     return np.array([v if v is not None else np.nan for v in values], dtype=float)
+
+
+def _wrap(text: str, width: int) -> str:
+    """``text`` broken onto lines of at most ``width`` characters (words kept whole)."""
+    lines = [line for part in str(text).split("\n") for line in (textwrap.wrap(part, width) or [""])]
+    return _plain("\n".join(lines))
 
 
 def _short(text: str, limit: int) -> str:
