@@ -638,6 +638,17 @@ def test_checkpoint_round_trip(tmp_path, pairs, resnet18):
     assert torch.load(again, weights_only=True)["source_spec"] == "torchvision:resnet18"
 
 
+def test_checkpoint_records_the_pairs_it_was_aligned_on(tmp_path, pairs, resnet18):
+    # The scoring result can then warn when the checkpoint is scored on those same pairs.
+    digest = pairs.content_hash()
+    path = save_checkpoint(tmp_path / "a.pt", encoder=resnet18, module=resnet18.module,
+                           metadata={"data_content_hash": digest})
+    assert load_encoder(f"checkpoint:{path}", device="cpu").describe()["aligned_on"] == digest
+    odd = save_checkpoint(tmp_path / "b.pt", encoder=resnet18, module=resnet18.module,
+                          metadata={"data_content_hash": "\x1b[2J not a hash"})
+    assert "aligned_on" not in load_encoder(f"checkpoint:{odd}", device="cpu").describe()  # never echoed
+
+
 def test_checkpoint_of_python_module(tmp_path, pairs, user_file):
     enc = load_encoder(f"python:{user_file}:conv_net", device="cpu")
     path = save_checkpoint(tmp_path / "conv.ckpt", encoder=enc, module=enc.module, metadata={})

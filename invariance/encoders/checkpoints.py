@@ -89,7 +89,16 @@ def _load_checkpoint(spec: str, rest: str, weights, trusted_code=()) -> Encoder:
         spec=spec, module=base.module.eval(), preprocess=preprocess,
         weights_sha256=_file_sha256(path), arch=base.arch, device=torch.device("cpu"), weights=str(path),
         kind="checkpoint", layout=base.layout, source=dict(base.source), code_sha256=base.code_sha256,
+        aligned_on=_aligned_on(ckpt.get("metadata")),
     )
+
+
+def _aligned_on(metadata) -> str | None:
+    """The content hash of the pairs an ``align`` checkpoint was trained on, if it is a plain hex string."""
+    value = metadata.get("data_content_hash") if isinstance(metadata, dict) else None
+    if isinstance(value, str) and 0 < len(value) <= 128 and all(c in "0123456789abcdef" for c in value):
+        return value
+    return None
 
 
 def _stored_state(path: Path, state) -> dict:

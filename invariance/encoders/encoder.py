@@ -42,6 +42,9 @@ class Encoder:
         for ``checkpoint:`` specs), used by :func:`save_checkpoint`.
     code_sha256 : str or None
         SHA-256 of the Python file that built a ``python:`` module.
+    aligned_on : str or None
+        For a checkpoint written by ``align``: the content hash of the image set it was
+        aligned on, so scoring it on those same pairs can be flagged.
     """
 
     spec: str
@@ -55,6 +58,7 @@ class Encoder:
     layout: str = "nchw"
     source: dict = field(default_factory=dict)
     code_sha256: str | None = None
+    aligned_on: str | None = None
 
     def __call__(self, x: torch.Tensor) -> torch.Tensor:
         """Pooled (N, D) features of a preprocessed batch on ``device``."""
@@ -66,9 +70,10 @@ class Encoder:
         Returns
         -------
         dict
-            ``{"spec", "arch", "weights", "weights_sha256", "preprocess", "device"}``.
+            ``{"spec", "arch", "weights", "weights_sha256", "preprocess", "device"}``, and
+            ``"aligned_on"`` for a checkpoint that records its alignment pairs.
         """
-        return {
+        info = {
             "spec": self.spec,
             "arch": self.arch,
             "weights": self.weights,
@@ -76,6 +81,9 @@ class Encoder:
             "preprocess": self.preprocess.describe(),
             "device": str(self.device),
         }
+        if self.aligned_on:
+            info["aligned_on"] = self.aligned_on
+        return info
 
 
 def resolve_device(device: str = "auto") -> torch.device:
