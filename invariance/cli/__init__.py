@@ -12,6 +12,7 @@ import click
 from .. import __version__
 from .align import align
 from .compare import compare
+from .explain import explain
 from .other import bench, demo, layers, report, scenes
 from .score import score
 
@@ -27,6 +28,7 @@ def cli():
       invariance score demo_set --encoder torchvision:resnet18 --json r18.json
       invariance align demo_set --encoder SPEC --out aligned.pt
       invariance compare demo_set --encoder A --encoder checkpoint:aligned.pt --report cmp.html
+      invariance explain demo_set --encoder SPEC --worst 4 --out maps   # where clutter bites
 
     A data set folder holds clean/ and cluttered/ with matching file names and an optional
     labels.csv (first column the file name; text columns are classes, numeric columns are
@@ -34,7 +36,7 @@ def cli():
     """
 
 
-for _command in (scenes, score, layers, compare, report, align, demo, bench):
+for _command in (scenes, score, layers, compare, report, align, explain, demo, bench):
     cli.add_command(_command)
 
 

@@ -27,12 +27,15 @@ Modules, in drawing order:
 :mod:`.sampler`
     one pair: the scene, the clutter choice and its random streams (:func:`render_pair`);
 :mod:`.writer`
-    a data set folder and its ``labels.csv`` (:func:`generate_scenes`).
+    a data set folder and its ``labels.csv`` (:func:`generate_scenes`);
+:mod:`.masks`
+    where each clutter factor acts in a pair, from its seed (:func:`clutter_masks`).
 """
 
 from __future__ import annotations
 
 from .distractors import DISTRACTOR_COUNTS
+from .masks import MASK_NAMES, clutter_masks, render_views
 from .palette import HANDLE_COLOURS, MIN_TARGET_CONTRAST, PART_COLOURS, SURFACE_COLOURS, TOOL_STEEL
 from .params import FACTORS, MAX_LEVEL, MAX_SIZE, MIN_SIZE, PART_KINDS
 from .sampler import pair_rng, render_pair, target_mask
@@ -44,6 +47,7 @@ __all__ = [
     "DISTRACTOR_COUNTS",
     "FACTORS",
     "HANDLE_COLOURS",
+    "MASK_NAMES",
     "MAX_LEVEL",
     "MAX_SIZE",
     "MIN_SIZE",
@@ -53,8 +57,10 @@ __all__ = [
     "SURFACE_COLOURS",
     "TOOL_KINDS",
     "TOOL_STEEL",
+    "clutter_masks",
     "generate_scenes",
     "pair_rng",
     "render_pair",
+    "render_views",
     "target_mask",
 ]
