@@ -186,6 +186,8 @@ def write_outputs_together(outputs) -> list[Path]:
             if _is_special(target):
                 in_place.append((target, data))
                 continue
+            if target.is_dir():  # found now, not at the rename, after other outputs had landed
+                raise InvarianceError(f"cannot write {target}: it is a folder; choose a file path")
             made += _make_parent(target)
             try:
                 staged.append((_staged(target, data), target))

@@ -264,6 +264,19 @@ def test_outputs_of_one_command_are_written_all_or_none(tmp_path, monkeypatch):
     assert written[2] == type(old)(os.devnull) and not os.path.isfile(os.devnull)
 
 
+def test_a_folder_at_a_later_output_path_stops_before_any_output_lands(tmp_path):
+    from invariance import _io
+    from invariance.errors import InvarianceError
+
+    first = tmp_path / "result.json"
+    first.write_text("previous run")
+    (tmp_path / "maps.png").mkdir()
+    with pytest.raises(InvarianceError, match=r"cannot write .*maps.png: it is a folder"):
+        _io.write_outputs_together([(first, "new"), (tmp_path / "maps.png", b"png")])
+    assert first.read_text() == "previous run"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["maps.png", "result.json"]
+
+
 def test_a_full_cache_volume_is_warned_about_once_and_the_run_goes_on(tmp_path, monkeypatch):
     from invariance import _io
     from invariance.encoders import cache
