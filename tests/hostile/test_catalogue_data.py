@@ -223,7 +223,22 @@ ALIGN_CASES = [
                                              *ALIGN])[2], 1, r"cannot write .*a.pt.*No space left on device"),
 ]
 
-CASES = LABEL_CASES + IMAGE_CASES + FOLDER_CASES + SCENES_CASES + DEMO_CASES + ALIGN_CASES
+EXPLAIN = ["--encoder", ENCODER, "--quiet", "--image-size", "16"]
+
+EXPLAIN_CASES = [
+    Case("explain-pair-not-in-the-set", lambda ws: ["explain", ws.data(), "--pair", "nope.png", "--out", ws / "maps",
+                                                     *EXPLAIN], 1, r"pair 'nope.png' is not in the data set .* \(12 pairs\)"),
+    Case("explain-patch-larger-than-the-image", lambda ws: ["explain", ws.data(), "--pair", "s00.png", "--patch", "64",
+                                                             "--out", ws / "maps", *EXPLAIN], 1,
+         r"pair s00.png: the image is 16 x 16 px, smaller than the 64 px patch; pass a patch of at most 16 px"),
+    Case("explain-pair-and-worst-together", lambda ws: ["explain", ws.data(), "--pair", "s00.png", "--worst", "2",
+                                                         "--out", ws / "maps", *EXPLAIN], 2, r"give --pair NAME or --worst K, not both"),
+    Case("explain-out-under-a-file", lambda ws: (ws.text("f", "x"), ["explain", ws.data(), "--pair", "s00.png",
+                                                                     "--out", ws / "f" / "maps", *EXPLAIN])[1], 1,
+         r"explain.json: .*f is not a folder; choose an output path inside a writable folder"),
+]
+
+CASES = LABEL_CASES + IMAGE_CASES + FOLDER_CASES + SCENES_CASES + DEMO_CASES + ALIGN_CASES + EXPLAIN_CASES
 
 
 @pytest.mark.parametrize("case", CASES, ids=[c.id for c in CASES])

@@ -6,7 +6,7 @@ import test_catalogue_data
 import test_catalogue_files
 from hostile_workspace import Workspace
 
-COMMANDS = ("scenes", "score", "align", "compare", "report", "layers", "demo")
+COMMANDS = ("scenes", "score", "align", "compare", "report", "layers", "demo", "explain")
 
 
 def test_catalogue_has_at_least_80_cases_over_every_command(tmp_path, monkeypatch):
