@@ -55,6 +55,12 @@ _EXPORTS = {
     "load_as_comparison": "invariance.results",
     "rank_results": "invariance.results",
     "write_report": "invariance.report",
+    # where in the image, and what clutter does to a policy's output
+    "occlusion_map": "invariance.explain",
+    "gradient_map": "invariance.explain",
+    "explain_pairs": "invariance.explain",
+    "output_drift": "invariance.metrics.output_drift",
+    "clutter_masks": "invariance.scenes",
     # errors
     "InvarianceError": "invariance.errors",
     "InvalidParameter": "invariance.errors",
