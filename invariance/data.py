@@ -25,6 +25,9 @@ from .errors import InvarianceError
 
 IMAGE_EXTENSIONS = frozenset({".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff", ".webp", ".gif"})
 LABELS_FILE = "labels.csv"
+# The labels.csv column naming each pair's episode (group): never probed, it sets the unit of
+# every split and resample (docs/sources.md).
+GROUP_COLUMN = "episode"
 _MAX_LISTED = 10  # names shown in an error before "and N more"
 # Key of ``Image.info`` where :func:`load_rgb` records the file an image came from, so
 # later steps (preprocessing) can name it in their messages.
@@ -53,6 +56,9 @@ class LabelTable:
         distinct: names or ids, not classes (see :data:`_IDENTIFIER_MIN_ROWS`).
     notes : list of str
         Sentences for the result's warnings (one per identifier column).
+    groups : ndarray of str or None
+        The ``episode`` column: the group of each pair, kept whole by every split and
+        resample (docs/sources.md); never probed.
     """
 
     tasks: dict[str, np.ndarray] = field(default_factory=dict)
@@ -60,6 +66,7 @@ class LabelTable:
     factors: dict[str, np.ndarray] = field(default_factory=dict)
     identifiers: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+    groups: np.ndarray | None = None
 
     def subset(self, indices) -> "LabelTable":
         idx = np.asarray(indices, dtype=int)
@@ -69,6 +76,7 @@ class LabelTable:
             factors={k: v[idx] for k, v in self.factors.items()},
             identifiers=list(self.identifiers),
             notes=list(self.notes),
+            groups=None if self.groups is None else self.groups[idx],
         )
 
 
@@ -134,6 +142,9 @@ class PairSet:
             info["factors"] = sorted(self.labels.factors)
             if self.labels.identifiers:
                 info["identifier_columns"] = list(self.labels.identifiers)
+            if self.labels.groups is not None:
+                info["groups"] = int(np.unique(self.labels.groups).size)
+                info["group_column"] = GROUP_COLUMN
         if self.skipped:
             info["skipped_unpaired"] = len(self.skipped)
         return info
@@ -327,12 +338,25 @@ def _is_factor(column: str) -> bool:
     return column.startswith("factor_") or column == "level"
 
 
+def _group_values(path: Path, values: Sequence[str], lines: Sequence[int]) -> np.ndarray:
+    """The ``episode`` column as strings; an empty cell is an error naming its line."""
+    for value, line in zip(values, lines):
+        if str(value).strip() == "":
+            raise InvarianceError(
+                f"{path} line {line}: empty {GROUP_COLUMN!r} cell; every row needs its episode (group) "
+                f"name, or drop the column to treat each pair as its own group"
+            )
+    return np.array([str(v).strip() for v in values], dtype=object).astype(str)
+
+
 def _label_table(path: Path, columns: Sequence[str], rows, line_numbers=None) -> LabelTable:
     table = LabelTable()
     for j, col in enumerate(columns):
         values = [vals[j] for _, vals in rows]
         lines = line_numbers or list(range(2, len(values) + 2))
-        if _is_factor(col):
+        if col == GROUP_COLUMN:
+            table.groups = _group_values(path, values, lines)
+        elif _is_factor(col):
             table.factors[col] = np.array(values, dtype=object).astype(str)
         elif _looks_numeric(values):
             table.tasks[col] = _parse_numeric(path, col, values, lines)
@@ -462,3 +486,27 @@ def label_columns(pairs) -> tuple[dict | None, dict | None]:
     if pairs.labels is None:
         return None, None
     return pairs.labels.tasks or None, pairs.labels.factors or None
+
+
+def pair_groups(pairs):
+    """The group (episode) of each pair from labels.csv, or ``None`` when there is none."""
+    if pairs.labels is None:
+        return None
+    return pairs.labels.groups
+
+
+def unpaired_folder(path):
+    """``(clean_paths, cluttered_paths)`` when a data folder's two sub-folders share no name.
+
+    Such a folder holds two unpaired domains (sim vs real, bench vs site); ``None`` when
+    it is not a folder with ``clean/`` and ``cluttered/``, or when any name is shared
+    (then it is a paired set, and orphans are :func:`discover_pairs`'s business).
+    """
+    path = Path(path)
+    clean_dir, cluttered_dir = path / "clean", path / "cluttered"
+    if not (clean_dir.is_dir() and cluttered_dir.is_dir()):
+        return None
+    clean_names, cluttered_names = _image_names(clean_dir), _image_names(cluttered_dir)
+    if not clean_names or not cluttered_names or set(clean_names) & set(cluttered_names):
+        return None
+    return [clean_dir / n for n in clean_names], [cluttered_dir / n for n in cluttered_names]

@@ -122,6 +122,12 @@ def score_dataset(data, spec: str, *, weights=None, layers: Sequence[str] | None
     """
     extraction = options_or_default(extraction, ExtractionOptions, "extraction")
     scoring = options_or_default(scoring, ScoringOptions, "scoring")
+    if pairs is None and data is not None and _unpaired_folder(data):
+        # clean/ and cluttered/ share no name: two unpaired domains, announced, never fake-paired
+        as_reporter(progress).note(f"{data}: clean/ and cluttered/ share no file name; scoring them as unpaired domains")
+        return score_sources(f"images:{Path(data) / 'clean'}", f"images:{Path(data) / 'cluttered'}", spec,
+                             weights=weights, layers=layers, name=name, extraction=extraction, scoring=scoring,
+                             progress=progress, encoder=encoder)
     if pairs is None:
         pairs = _discover(data, extraction)
     from .encoders import extract_features  # after the data checks: bad data fails fast
@@ -146,14 +152,17 @@ def _score_layers(features: dict, layer_list, pairs, scoring: ScoringOptions) ->
 
     from .scoring import score_features
 
+    from .data import pair_groups
+
     tasks, factors = label_columns(pairs)
+    groups = pair_groups(pairs)
     per_layer = {}
     for layer in layer_list:
         clean, cluttered = features[layer]
         # t-SNE only for the layer whose projection the report draws
         options = replace(scoring, tsne=scoring.tsne and layer == layer_list[-1])
         per_layer[layer] = score_features(clean, cluttered, tasks=tasks, factors=factors, names=list(pairs.names),
-                                          options=options)
+                                          options=options, groups=groups)
     result = {"schema": RESULT_SCHEMA, **per_layer[layer_list[-1]]}
     if len(layer_list) > 1:
         result["layers"] = {layer: s["metrics"] for layer, s in per_layer.items()}
@@ -161,7 +170,7 @@ def _score_layers(features: dict, layer_list, pairs, scoring: ScoringOptions) ->
 
 
 def score_feature_arrays(clean: np.ndarray, cluttered: np.ndarray, *, tasks=None, factors=None, names=None,
-                         scoring: ScoringOptions | None = None, source: dict | None = None) -> dict:
+                         scoring: ScoringOptions | None = None, source: dict | None = None, groups=None) -> dict:
     """Score features computed anywhere (rows paired) into a result dict.
 
     Parameters
@@ -175,6 +184,8 @@ def score_feature_arrays(clean: np.ndarray, cluttered: np.ndarray, *, tasks=None
     scoring : ScoringOptions, optional
     source : dict, optional
         ``spec``, ``name`` and ``path`` recorded as the result's encoder and data set.
+    groups : array-like of shape (n_pairs,), optional
+        Group (episode) of each pair: the unit of every split and resample.
 
     Returns
     -------
@@ -185,7 +196,8 @@ def score_feature_arrays(clean: np.ndarray, cluttered: np.ndarray, *, tasks=None
 
     scoring = options_or_default(scoring, ScoringOptions, "scoring")
     start = time.perf_counter()
-    scored = score_features(clean, cluttered, tasks=tasks, factors=factors, names=names, options=scoring)
+    scored = score_features(clean, cluttered, tasks=tasks, factors=factors, names=names, options=scoring,
+                            groups=groups)
     elapsed = time.perf_counter() - start
     source = source or {}
     return {
@@ -212,17 +224,36 @@ def _entry(item) -> EncoderEntry:
     raise InvalidParameter("encoders", f"encoders entry {item!r} is not valid; pass an EncoderEntry")
 
 
+def _domain_runner(data, data_b, extraction, scoring, sources, reporter):
+    """``(description, run(entry, encoder))`` scoring one encoder on the data."""
+    unpaired = sources is not None and sources.unpaired
+    if data_b is not None or unpaired or _unpaired_folder(data):
+        a, b = (data, data_b) if data_b is not None else (f"images:{Path(data) / 'clean'}",
+                                                          f"images:{Path(data) / 'cluttered'}")
+        return "two domains", lambda entry, encoder: score_sources(
+            str(a), str(b), entry.spec, weights=entry.weights, layers=entry.layers, name=entry.name,
+            extraction=extraction, scoring=scoring, sources=sources, progress=reporter, encoder=encoder)
+    pairs = _discover(data, extraction)
+    return f"{len(pairs)} pairs", lambda entry, encoder: score_dataset(
+        data, entry.spec, weights=entry.weights, layers=entry.layers, name=entry.name, extraction=extraction,
+        scoring=scoring, progress=reporter, pairs=pairs, encoder=encoder)
+
+
 def compare_encoders(data, encoders: Sequence, *, extraction: ExtractionOptions | None = None,
-                     scoring: ScoringOptions | None = None, progress=True) -> dict:
-    """Score several encoders on the same pairs, folds and permutations.
+                     scoring: ScoringOptions | None = None, progress=True, data_b=None, sources=None) -> dict:
+    """Score several encoders on the same pairs (or domains), folds and permutations.
 
     Parameters
     ----------
     data : str or Path
-        Data set folder or manifest CSV.
+        Data set folder or manifest CSV; with ``data_b``, the source spec of domain A.
     encoders : sequence of EncoderEntry (or spec strings, or dicts with EncoderEntry's fields)
     extraction, scoring : options, optional
     progress : bool, callable or Reporter
+    data_b : str, optional
+        Source spec of domain B (see :func:`score_sources` and docs/sources.md).
+    sources : SourceOptions, optional
+        Stride, frame cap, labels, skip_unpaired, unpaired.
 
     Returns
     -------
@@ -238,15 +269,13 @@ def compare_encoders(data, encoders: Sequence, *, extraction: ExtractionOptions 
     if not entries:
         raise InvalidParameter("encoders", "encoders=[] is not valid; pass at least one encoder")
     reporter = as_reporter(progress)
-    pairs = _discover(data, extraction)
+    described, run = _domain_runner(data, data_b, extraction, scoring, sources, reporter)
     results, failures = [], []
     for entry in entries:
-        reporter.note(f"scoring {entry.label} on {len(pairs)} pairs")
+        reporter.note(f"scoring {entry.label} on {described}")
         try:
             encoder = _load(entry.spec, entry.weights, extraction, entry.image_size)
-            results.append(score_dataset(data, entry.spec, weights=entry.weights, layers=entry.layers,
-                                         name=entry.name, extraction=extraction, scoring=scoring,
-                                         progress=reporter, pairs=pairs, encoder=encoder))
+            results.append(run(entry, encoder))
         except InvarianceError as exc:
             failures.append({"spec": entry.spec, "name": entry.label, "error": str(exc)})
             reporter.note(f"  failed: {exc}")
@@ -286,4 +315,168 @@ def align_dataset(data, spec: str, *, out, weights=None, alignment: AlignmentOpt
         "metrics": outcome["after"],
         "alignment": outcome,
         "environment": environment_info(seed=scoring.seed, device=str(encoder.device), timings={"align": elapsed}),
+    }
+
+
+def _unpaired_folder(data) -> bool:
+    from .data import unpaired_folder
+
+    path = Path(data)
+    return path.is_dir() and unpaired_folder(path) is not None
+
+
+def _label_arrays(labels: dict, rows) -> dict:
+    """Per-frame label lists as probe columns on ``rows``: numbers as float64, else classes."""
+    out = {}
+    for name, values in labels.items():
+        picked = [values[i] for i in rows]
+        if all(isinstance(v, (int, float, np.floating, np.integer)) for v in picked):
+            out[name] = np.asarray(picked, dtype=np.float64)
+        else:
+            out[name] = np.array([str(v) for v in picked])
+    return out
+
+
+def _source_side(source, encoder, layer_list, extraction, sources, progress, label):
+    from .encoders.extraction import extract_frame_features
+    from .sources import expected_frames, iter_frames
+
+    out = extract_frame_features(iter_frames(source, sources), encoder, layer_list, options=extraction,
+                                 progress=progress, total=expected_frames(source, sources), label=label)
+    group_of = {e.name: e.group for e in source.episodes}
+    out["groups"] = np.array([group_of[ep] for ep, _ in out["keys"]])
+    return out
+
+
+def _score_source_layers(domains, side_a, side_b, layer_list, scoring):
+    """Per-layer scores of two extracted domains, paired or unpaired."""
+    from dataclasses import replace
+
+    from .scoring import score_features, score_unpaired_features
+    from .sources import join_rows
+
+    per_layer, extra = {}, {}
+    if domains.mode == "paired":
+        idx_a, idx_b, unmatched = join_rows(side_a["keys"], side_b["keys"])
+        extra["frames_without_partner"] = unmatched
+    for layer in layer_list:
+        options = replace(scoring, tsne=scoring.tsne and layer == layer_list[-1])
+        fa, fb = side_a["features"][layer], side_b["features"][layer]
+        if domains.mode == "paired":
+            names = [f"{side_a['keys'][i][0]}#{side_a['keys'][i][1]}" for i in idx_a]
+            per_layer[layer] = score_features(fa[idx_a], fb[idx_b], tasks=_label_arrays(side_a["labels"], idx_a) or None,
+                                              names=names, options=options, groups=side_a["groups"][idx_a])
+        else:
+            rows_a, rows_b = range(len(side_a["keys"])), range(len(side_b["keys"]))
+            per_layer[layer] = score_unpaired_features(
+                fa, fb, groups_a=side_a["groups"], groups_b=side_b["groups"],
+                tasks_a=_label_arrays(side_a["labels"], rows_a) or None,
+                tasks_b=_label_arrays(side_b["labels"], rows_b) or None, options=options)
+    return per_layer, extra
+
+
+def score_sources(source_a, source_b, spec: str, *, weights=None, layers: Sequence[str] | None = None,
+                  name: str | None = None, extraction: ExtractionOptions | None = None,
+                  scoring: ScoringOptions | None = None, sources=None, progress=True, encoder=None) -> dict:
+    """Score an encoder on two domains given as source specs (HDF5, zarr, video, images).
+
+    Domains holding the same episodes are paired by (episode, frame index) and scored
+    by :func:`invariance.scoring.score_features` with the episode as the group of every
+    split; domains with no episode in common (or ``sources.unpaired``) are scored by
+    :func:`invariance.scoring.score_unpaired_features`. Frames are read lazily.
+
+    Parameters
+    ----------
+    source_a, source_b : str
+        Source specs (docs/sources.md); A is the reference (clean) domain.
+    spec, weights, layers, name, extraction, scoring, progress, encoder
+        As :func:`score_dataset`.
+    sources : SourceOptions, optional
+        Stride, frame cap, labels from the files, skip_unpaired, unpaired.
+
+    Returns
+    -------
+    dict
+        A result in the ``invariance.result/1`` schema; ``dataset`` adds ``domains``,
+        ``pairing``, ``episodes`` and ``frames``; an unpaired result has ``not_computed``.
+    """
+    from .sources import SourceOptions, match_domains, open_source
+
+    extraction = options_or_default(extraction, ExtractionOptions, "extraction")
+    scoring = options_or_default(scoring, ScoringOptions, "scoring")
+    sources = options_or_default(sources, SourceOptions, "sources")
+    if sources.skip_unpaired is False and extraction.skip_unpaired:
+        from dataclasses import replace
+
+        sources = replace(sources, skip_unpaired=True)
+    domains = match_domains(open_source(source_a, sources), open_source(source_b, sources), sources)
+    reporter = as_reporter(progress)
+    for note in domains.notes:
+        reporter.note(note)
+    if encoder is None:
+        encoder = _load(spec, weights, extraction)
+    layer_list = list(layers) if layers else [DEFAULT_LAYER]
+    start = time.perf_counter()
+    side_a = _source_side(domains.a, encoder, layer_list, extraction, sources, reporter, "domain A")
+    side_b = _source_side(domains.b, encoder, layer_list, extraction, sources, reporter, "domain B")
+    timings = {"extract": time.perf_counter() - start}
+    start = time.perf_counter()
+    per_layer, extra = _score_source_layers(domains, side_a, side_b, layer_list, scoring)
+    timings["score"] = time.perf_counter() - start
+    result = {"schema": RESULT_SCHEMA, **per_layer[layer_list[-1]]}
+    if len(layer_list) > 1:
+        result["layers"] = {layer: s["metrics"] for layer, s in per_layer.items()}
+    result["warnings"] = domains.notes + domains.a.warnings + domains.b.warnings + result["warnings"]
+    if extra.get("frames_without_partner"):
+        result["warnings"].append(f"{extra['frames_without_partner']} frames had no partner at the same (episode, "
+                                  f"frame index) in the other domain and were left out")
+    result["encoder"] = {**encoder.describe(), "name": name or spec, "layer": layer_list[-1]}
+    result["dataset"] = {
+        "path": str(source_a), "domains": {"a": domains.a.spec, "b": domains.b.spec}, "pairing": domains.mode,
+        "pairs": len(result["pairs"]), "frames": [len(side_a["keys"]), len(side_b["keys"])],
+        "episodes": [len(domains.a.episodes), len(domains.b.episodes)],
+        "sampling": {"stride": sources.stride, "max_frames_per_episode": sources.max_frames_per_episode},
+        "tasks": {k: ("regression" if np.asarray(v).dtype.kind == "f" else "classification")
+                  for k, v in _label_arrays(side_a["labels"], [0]).items()},
+    }
+    if domains.skipped:
+        result["dataset"]["skipped_unpaired"] = len(domains.skipped)
+    result["environment"] = environment_info(seed=scoring.seed, device=str(encoder.device), timings=timings)
+    return result
+
+
+def score_unpaired_feature_arrays(a: np.ndarray, b: np.ndarray, *, groups_a=None, groups_b=None,
+                                  scoring: ScoringOptions | None = None, source: dict | None = None) -> dict:
+    """Score features of two unpaired domains computed anywhere into a result dict.
+
+    Parameters
+    ----------
+    a, b : ndarray of shape (n_a, d), (n_b, d)
+        Features of domain A (the reference) and domain B; rows need not correspond.
+    groups_a, groups_b : array-like, optional
+        Group (episode) per row.
+    scoring : ScoringOptions, optional
+    source : dict, optional
+        ``spec``, ``name`` and ``path`` recorded as the result's encoder and data set.
+
+    Returns
+    -------
+    dict
+        A result in the ``invariance.result/1`` schema with ``pairing`` "unpaired" and
+        ``not_computed`` (see :func:`invariance.scoring.score_unpaired_features`).
+    """
+    from .scoring import score_unpaired_features
+
+    scoring = options_or_default(scoring, ScoringOptions, "scoring")
+    start = time.perf_counter()
+    scored = score_unpaired_features(a, b, groups_a=groups_a, groups_b=groups_b, options=scoring)
+    elapsed = time.perf_counter() - start
+    source = source or {}
+    return {
+        "schema": RESULT_SCHEMA, **scored,
+        "encoder": {"spec": source.get("spec", "features"), "name": source.get("name", "features"),
+                    "layer": DEFAULT_LAYER},
+        "dataset": {"path": source.get("path"), "pairs": 0, "pairing": "unpaired",
+                    "frames": [int(np.asarray(a).shape[0]), int(np.asarray(b).shape[0])]},
+        "environment": environment_info(seed=scoring.seed, timings={"score": elapsed}),
     }

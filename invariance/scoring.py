@@ -118,8 +118,8 @@ class _Layer:
     on several threads.
     """
 
-    def __init__(self, clean, cluttered, tasks, options):
-        self.clean, self.cluttered, self.tasks = clean, cluttered, tasks
+    def __init__(self, clean, cluttered, tasks, options, groups=None):
+        self.clean, self.cluttered, self.tasks, self.groups = clean, cluttered, tasks, groups
         self.seed, self.permutations, self.folds = options.seed, options.permutations, options.folds
         try:
             self.kernel = _mmd.PairedKernel(clean, cluttered)
@@ -131,11 +131,17 @@ class _Layer:
             return self.clean, self.cluttered, self.tasks
         return self.clean[idx], self.cluttered[idx], {k: v[idx] for k, v in self.tasks.items()}
 
+    def group_rows(self, idx):
+        """Group codes of the pairs ``idx`` (renumbered), or None without groups."""
+        if self.groups is None:
+            return None
+        return self.groups if idx is None else np.unique(self.groups[idx], return_inverse=True)[1]
+
     def drift(self, idx=None):
         clean, cluttered, _ = self.rows(idx)
         if clean.shape[0] < _drift.MIN_PAIRS:
             return _not_computable(clean.shape[0], _drift.MIN_PAIRS)
-        return _guard(_drift.paired_drift, clean, cluttered, seed=self.seed)
+        return _guard(_drift.paired_drift, clean, cluttered, seed=self.seed, groups=self.group_rows(idx))
 
     def mmd(self, idx=None):
         n = self.clean.shape[0] if idx is None else idx.size
@@ -143,14 +149,14 @@ class _Layer:
             return _not_computable(n, _mmd.MIN_PAIRS)
         if isinstance(self.kernel, dict):
             return dict(self.kernel)
-        return _guard(self.kernel.test, idx, permutations=self.permutations, seed=self.seed)
+        return _guard(self.kernel.test, idx, permutations=self.permutations, seed=self.seed, groups=self.groups)
 
-    def domain(self, clean, cluttered):
+    def domain(self, clean, cluttered, groups=None):
         n, need = clean.shape[0], _domain.MIN_PAIRS_PER_FOLD * self.folds
         if n < need:
             return _not_computable(n, need)
         result = _guard(_domain.domain_classifier, clean, cluttered, folds=self.folds,
-                        seed=self.seed, permutations=self.permutations)
+                        seed=self.seed, permutations=self.permutations, groups=groups)
         result.pop("decision", None)
         return result
 
@@ -158,9 +164,10 @@ class _Layer:
         """Every metric on the pairs ``idx`` (default all); ``drift`` if already computed."""
         clean, cluttered, tasks = self.rows(idx)
         drift = self.drift(idx) if drift is None else drift
-        out = {"domain_classifier": self.domain(clean, cluttered), "mmd": self.mmd(idx)}
+        groups = self.group_rows(idx)
+        out = {"domain_classifier": self.domain(clean, cluttered, groups), "mmd": self.mmd(idx)}
         if tasks:
-            out["probe"] = _probe.linear_probes(clean, cluttered, tasks, seed=self.seed)
+            out["probe"] = _probe.linear_probes(clean, cluttered, tasks, seed=self.seed, groups=groups)
         out["paired_drift"] = _drift_summary(drift)
         if clean.shape[0] < CKA_MIN_PAIRS:
             out["cka"] = _not_computable(clean.shape[0], CKA_MIN_PAIRS)
@@ -303,6 +310,7 @@ def score_features(
     factors=None,
     names=None,
     options=None,
+    groups=None,
 ):
     """Every invariance metric on paired clean / cluttered features.
 
@@ -322,6 +330,12 @@ def score_features(
         Seed (every split, permutation, bootstrap and subsample), permutations of the
         MMD and domain-classifier tests, domain-classifier folds and whether to add a
         t-SNE view (``projection["tsne"]``); default ``ScoringOptions()``.
+    groups : array-like of shape (n_pairs,), optional
+        Group (episode) of each pair. Every split (domain-classifier folds, probe
+        train/test), every permutation (one swap per group) and every bootstrap (whole
+        groups) then treats the group as the unit: frames of one episode are strongly
+        correlated, so counting them as independent would inflate the domain classifier
+        and narrow the intervals. Default: each pair is its own group (docs/sources.md).
 
     Returns
     -------
@@ -332,7 +346,8 @@ def score_features(
         1979 across the subgroups), ``breakdowns_correction`` (how they were adjusted),
         ``breakdowns_skipped`` (subgroups too small for the tests, with the reason),
         ``pairs`` ([{"name", "drift"}]), ``projection`` (2-D PCA of a seeded subsample of
-        at most 500 pairs, with their ``indices``) and ``warnings``.
+        at most 500 pairs, with their ``indices``), ``warnings`` and ``grouping`` (``unit``
+        "pair" or "group", ``groups``, and for groups the rows per group).
 
     Raises
     ------
@@ -342,7 +357,7 @@ def score_features(
     """
     options = _scoring_options(options)
     with threadpool_limits(limits=_THREADS):
-        result = _score(clean, cluttered, tasks, factors, names, options)
+        result = _score(clean, cluttered, tasks, factors, names, options, groups)
     result = _plain(result)
     _check_finite(result)
     return result
@@ -360,9 +375,15 @@ def _validated(clean, cluttered, folds):
     return clean, cluttered
 
 
-def _score(clean, cluttered, tasks, factors, names, options):
+def _score(clean, cluttered, tasks, factors, names, options, groups=None):
     clean, cluttered = _validated(clean, cluttered, options.folds)
     n = clean.shape[0]
+    groups = _domain.check_groups(groups, n)
+    if groups is not None and groups.max() + 1 < options.folds:
+        raise InvarianceError(
+            f"only {groups.max() + 1} groups (episodes); the domain classifier needs at least "
+            f"{options.folds}, one whole group per fold: add episodes or lower folds"
+        )
     tasks = _check_columns("tasks", tasks, n)
     factors = _check_columns("factors", factors, n)
     if names is None:
@@ -371,7 +392,7 @@ def _score(clean, cluttered, tasks, factors, names, options):
         raise InvarianceError(
             f"names has {len(names)} entries for {n} pairs: give one name per pair"
         )
-    layer = _Layer(clean, cluttered, tasks, options)
+    layer = _Layer(clean, cluttered, tasks, options, groups)
     drift = layer.drift()
     metrics = layer.metrics(drift=drift)
     breakdowns, correction, skipped, group_warnings = _breakdowns(layer, factors, options.folds)
@@ -387,7 +408,19 @@ def _score(clean, cluttered, tasks, factors, names, options):
         ],
         "projection": _projection(clean, cluttered, options.seed, options.tsne),
         "warnings": _feature_warnings(clean, cluttered) + _metric_warnings(metrics) + group_warnings,
+        "grouping": _grouping(groups, n),
     }
+
+
+def _grouping(groups, n):
+    """The result's ``grouping``: the unit of every split, resample and permutation."""
+    if groups is None:
+        return {"unit": "pair", "groups": int(n),
+                "note": "no groups given: each pair is its own unit"}
+    sizes = np.bincount(groups)
+    return {"unit": "group", "groups": int(sizes.size), "rows_per_group": [int(sizes.min()), int(sizes.max())],
+            "note": "splits, permutations and bootstrap resamples keep each group whole; p-values and "
+                    "intervals count groups, not frames"}
 
 
 def load_feature_files(clean_path, cluttered_path):
@@ -469,3 +502,101 @@ def _load_npy(path):
             f"those pairs from both files"
         )
     return array
+
+
+# Why each paired-only measure is left out of an unpaired result (the ``not_computed`` dict).
+UNPAIRED_REASONS = {
+    "paired_drift": "needs the two views of one scene; unpaired domains share no scene, and a made-up "
+                    "pairing would measure the pairing, not the clutter",
+    "pair_retrieval_top1": "needs each B row's own A scene to retrieve; unpaired domains have none",
+    "cka": "compares two representations of the same inputs row by row; unpaired rows are different inputs",
+    "within_pair_swaps": "the paired permutation null swaps views within a scene; unpaired data use the "
+                         "ordinary permutation null over the pooled sample instead",
+}
+
+
+def _unpaired_projection(a, b, seed):
+    """2-D PCA of at most PROJECTION_MAX_PAIRS rows of each domain (seeded subsamples)."""
+    rng = np.random.default_rng(seed)
+    picks = [np.sort(rng.choice(x.shape[0], PROJECTION_MAX_PAIRS, replace=False)) if x.shape[0] > PROJECTION_MAX_PAIRS
+             else np.arange(x.shape[0]) for x in (a, b)]
+    pooled = np.vstack([a[picks[0]], b[picks[1]]]).astype(np.float64)
+    if pooled.shape[1] < 2 or np.ptp(pooled, axis=0).max() == 0:
+        return {"not_computable": "features have fewer than 2 dimensions or are all identical"}
+    pca = PCA(n_components=2, svd_solver="full").fit(pooled)
+    coords = np.round(pca.transform(pooled), PROJECTION_DECIMALS)
+    m = picks[0].size
+    return {"method": "pca", "clean": coords[:m].tolist(), "cluttered": coords[m:].tolist(),
+            "indices": picks[0].tolist(), "indices_b": picks[1].tolist(),
+            "explained_variance_ratio": np.round(pca.explained_variance_ratio_, PROJECTION_DECIMALS).tolist()}
+
+
+def _check_unpaired_sizes(a, b, groups_a, groups_b, folds):
+    need = max(_domain.MIN_PAIRS_PER_FOLD * folds, _mmd.MIN_PAIRS)
+    for label, x, g in (("A", a, groups_a), ("B", b, groups_b)):
+        units = x.shape[0] if g is None else np.unique(np.asarray(g).astype(str)).size
+        if x.shape[0] < need or units < folds:
+            raise InvarianceError(
+                f"domain {label} has {x.shape[0]} rows in {units} groups; need at least {need} rows and "
+                f"{folds} groups (one whole group per fold): add episodes or lower folds"
+            )
+
+
+def score_unpaired_features(a, b, *, groups_a=None, groups_b=None, tasks_a=None, tasks_b=None, options=None):
+    """Every measure that has an unpaired form, on two samples with no scene in common.
+
+    Domain classifier with folds over groups stratified by domain and a permutation test
+    of group labels (:func:`invariance.metrics.domain.unpaired_domain_classifier`), MMD with
+    the ordinary permutation null over the pooled sample (Gretton et al., JMLR 13, 2012;
+    :func:`invariance.metrics.mmd.unpaired_permutation_test`), and probes trained on A and
+    scored on held-out A and on B (:func:`invariance.metrics.probe.unpaired_probes`). The
+    paired-only measures are absent from ``metrics`` and listed in ``not_computed`` with
+    the reason. In the result, ``clean`` stands for domain A and ``cluttered`` for B.
+
+    Parameters
+    ----------
+    a, b : ndarray of shape (n_a, d), (n_b, d)
+        Features of domain A (the reference, e.g. the lab bench) and domain B.
+    groups_a, groups_b : array-like, optional
+        Group (episode) per row; default every row its own group.
+    tasks_a, tasks_b : dict of str to ndarray, optional
+        Probe labels per row; labels present in both domains are probed.
+    options : ScoringOptions, optional
+
+    Returns
+    -------
+    dict
+        ``metrics``, ``not_computed``, ``breakdowns`` (empty), ``breakdowns_skipped``,
+        ``pairs`` (empty), ``projection``, ``warnings``, ``grouping`` and ``pairing``
+        ("unpaired").
+    """
+    options = _scoring_options(options)
+    a, b = _domain._validate_samples(a, b)
+    _check_unpaired_sizes(a, b, groups_a, groups_b, options.folds)
+    with threadpool_limits(limits=_THREADS):
+        metrics = {
+            "domain_classifier": _guard(_domain.unpaired_domain_classifier, a, b, groups_a=groups_a,
+                                        groups_b=groups_b, folds=options.folds, seed=options.seed,
+                                        permutations=options.permutations),
+            "mmd": _guard(_mmd.unpaired_permutation_test, a, b, groups_a=groups_a, groups_b=groups_b,
+                          permutations=max(options.permutations, 1), seed=options.seed),
+        }
+        if tasks_a and tasks_b:
+            metrics["probe"] = _probe.unpaired_probes(a, b, _check_columns("tasks_a", tasks_a, a.shape[0]),
+                                                      _check_columns("tasks_b", tasks_b, b.shape[0]),
+                                                      groups_a=groups_a, groups_b=groups_b, seed=options.seed)
+        projection = _unpaired_projection(a, b, options.seed)
+    warnings = [f"{name} not computable: {value['not_computable']}"
+                for name, value in metrics.items() if isinstance(value, dict) and "not_computable" in value]
+    result = {
+        "metrics": metrics, "not_computed": dict(UNPAIRED_REASONS), "pairing": "unpaired",
+        "breakdowns": {}, "breakdowns_skipped": [], "pairs": [], "projection": projection,
+        "warnings": warnings + ["unpaired domains: drift, pair retrieval and CKA are not computed (see not_computed)"],
+        "grouping": {"unit": "group" if groups_a is not None or groups_b is not None else "row",
+                     "groups": metrics["domain_classifier"].get("grouping", {}).get("groups"),
+                     "note": "splits and permutations keep each group whole; p-values and intervals count "
+                             "groups, not frames"},
+    }
+    result = _plain(result)
+    _check_finite(result)
+    return result

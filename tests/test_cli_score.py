@@ -138,3 +138,50 @@ def test_tsne_view_is_stored_and_drawn_when_asked(tmp_path):
     plain = tmp_path / "plain.json"
     _run(["score", "--features", str(a), str(b), "--json", str(plain), "--permutations", "20"])
     assert "tsne" not in json.loads(plain.read_text())["projection"]  # only when asked: it is slow
+
+
+# ----------------------------------------------------------------------- two domains (sources)
+
+
+@pytest.mark.parametrize("args, needle", [
+    (["a", "b", "c"], "two domains"),
+    (["hdf5:x.h5#frames=data/*/img"], "names one source"),
+    (["a", "b", "--stride", "0"], "--stride"),
+    (["a", "b", "--label", "no-equals-sign"], "--label"),
+])
+def test_source_usage_errors_exit_2_naming_the_problem(args, needle):
+    result = CliRunner().invoke(cli, ["score", *args, "--encoder", "torchvision:resnet18"])
+    assert result.exit_code == 2 and needle in result.output
+
+
+def test_a_missing_source_is_exit_1_naming_it(tmp_path):
+    result = CliRunner().invoke(cli, ["score", f"hdf5:{tmp_path / 'no.h5'}#frames=d/*", f"hdf5:{tmp_path / 'no.h5'}#frames=d/*",
+                                      "--encoder", "torchvision:resnet18", "--json", str(tmp_path / "r.json")])
+    assert result.exit_code == 1 and "no.h5: no such file" in result.output
+    assert not (tmp_path / "r.json").exists()
+
+
+def test_feature_files_with_an_episode_column_are_scored_by_episode(tmp_path):
+    a, b = _features(tmp_path, n=120)
+    rows = ["file,episode,x"] + [f"s{i},ep{i // 6},{i / 120:.3f}" for i in range(120)]
+    (tmp_path / "labels.csv").write_text("\n".join(rows) + "\n")
+    out = tmp_path / "r.json"
+    result = _run(["score", "--features", str(a), str(b), "--labels", str(tmp_path / "labels.csv"),
+                   "--permutations", "50", "--json", str(out)])
+    assert result.exit_code == 0, result.output
+    data = json.loads(out.read_text())
+    assert data["grouping"]["unit"] == "group" and data["grouping"]["groups"] == 20
+    assert "episode" not in data["metrics"]["probe"] and "x" in data["metrics"]["probe"]
+
+
+def test_unpaired_feature_files_of_different_lengths(tmp_path):
+    rng = np.random.default_rng(0)
+    np.save(tmp_path / "a.npy", rng.normal(size=(80, 6)))
+    np.save(tmp_path / "b.npy", rng.normal(size=(50, 6)) + 1.0)
+    out = tmp_path / "r.json"
+    result = _run(["score", "--features", str(tmp_path / "a.npy"), str(tmp_path / "b.npy"), "--unpaired",
+                   "--permutations", "50", "--json", str(out)])
+    assert result.exit_code == 0, result.output
+    data = json.loads(out.read_text())
+    assert data["pairing"] == "unpaired" and data["dataset"]["frames"] == [80, 50]
+    assert data["metrics"]["mmd"]["p_value"] < 0.05 and "cka" in data["not_computed"]

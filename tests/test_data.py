@@ -304,3 +304,34 @@ def test_load_rgb_records_the_file_for_later_messages(tmp_path):
 
     path = _png(tmp_path / "x.png")
     assert load_rgb(path).info[IMAGE_SOURCE_KEY] == str(path)
+
+
+# --------------------------------------------------------------------------- episodes (groups)
+
+
+def test_episode_column_is_the_group_not_a_task(tmp_path):
+    labels = "file,episode,part\na.png,ep1,nut\nb.png,ep1,bolt\nc.png,ep2,nut\n"
+    pairs = discover_pairs(_dataset(tmp_path / "d", labels=labels))
+    assert list(pairs.labels.groups) == ["ep1", "ep1", "ep2"]
+    assert "episode" not in pairs.labels.tasks and "part" in pairs.labels.tasks
+    assert pairs.describe()["groups"] == 2
+    assert list(pairs.subset([2, 0]).labels.groups) == ["ep2", "ep1"]
+
+
+def test_an_empty_episode_cell_names_its_line(tmp_path):
+    labels = "file,episode\na.png,ep1\nb.png,\nc.png,ep2\n"
+    with pytest.raises(InvarianceError, match="line 3: empty 'episode' cell"):
+        discover_pairs(_dataset(tmp_path / "d", labels=labels))
+
+
+def test_folders_sharing_no_name_are_unpaired_and_others_are_not(tmp_path):
+    from invariance.data import unpaired_folder
+
+    root = tmp_path / "u"
+    for n in ("a.png", "b.png"):
+        _png(root / "clean" / n)
+    for n in ("x.png", "y.png", "z.png"):
+        _png(root / "cluttered" / n)
+    clean, cluttered = unpaired_folder(root)
+    assert [p.name for p in clean] == ["a.png", "b.png"] and len(cluttered) == 3
+    assert unpaired_folder(_dataset(tmp_path / "p")) is None  # shared names: a paired set

@@ -7,13 +7,14 @@ from pathlib import Path
 import click
 
 from ._print import print_summary
+from ._sources import source_options
 from ._shared import (EXIT_CODES_HELP, check_outputs, encoder_option, extraction_options, gate_options,
                       handle_errors, json_option, quiet_option, report_option, scoring_options, weights_option,
                       write_result_outputs)
 
 
 @click.command(epilog=EXIT_CODES_HELP)
-@click.argument("data", required=False, type=click.Path(path_type=Path))
+@click.argument("data", nargs=-1, type=click.Path(path_type=Path))
 @encoder_option
 @weights_option
 @click.option("--layer", "layers", multiple=True, help="Graph node to tap (repeat for several; see `invariance layers`).")
@@ -27,10 +28,11 @@ from ._shared import (EXIT_CODES_HELP, check_outputs, encoder_option, extraction
 @scoring_options()
 @gate_options
 @extraction_options
+@source_options
 @quiet_option
 @handle_errors
 def score(data, spec, weights, layers, features, labels_csv, json_path, report_path, drift_csv, scoring, gates,
-          extraction, quiet):
+          extraction, sources, quiet):
     """Measure how differently an encoder sees the clean and cluttered views of the same scenes.
 
     DATA is a folder with clean/ and cluttered/ holding the same file names (the two views
@@ -41,22 +43,39 @@ def score(data, spec, weights, layers, features, labels_csv, json_path, report_p
     MMD with a paired permutation test, paired drift and pair retrieval, linear CKA, and a
     linear probe per label (trained on clean, tested on cluttered). With factor_*/level
     columns in labels.csv, every metric is also broken down per factor value and level.
+    Two DATA arguments are two domains (DATA_A the reference): source specs such as
+    hdf5:demos.h5#frames=data/*/obs/front_image, zarr:replay.zarr#frames=data/img, a
+    folder of videos (one per episode) or of images. Domains with the same episodes are
+    paired by (episode, frame index); otherwise, or with --unpaired, they are scored as
+    unpaired domains. Every split keeps an episode whole (docs/sources.md).
+
     Passing gates is evidence, not a safety certificate: trials on hardware follow the
     site's safety rules and the applicable standards.
     """
     from .. import pipeline
     from ..gates import evaluate_gates, raise_for_gates
 
-    if features is None and (data is None or spec is None):
+    if len(data) > 2:
+        raise click.UsageError(f"give one data folder or two domains (DATA_A DATA_B); got {len(data)} arguments")
+    if features is None and (not data or spec is None):
         raise click.UsageError("give DATA and --encoder SPEC, or --features CLEAN.npy CLUTTERED.npy")
-    if features is not None and (data is not None or spec is not None):
+    if features is not None and (data or spec is not None):
         raise click.UsageError("--features replaces DATA and --encoder; give one or the other")
-    check_outputs({"--json": json_path, "--report": report_path, "--drift-csv": drift_csv}, data=data, specs=[spec or ""],
-                  files=[weights, labels_csv, *(features or ())])
+    folder = data[0] if len(data) == 1 else None
+    check_outputs({"--json": json_path, "--report": report_path, "--drift-csv": drift_csv}, data=folder,
+                  specs=[spec or ""], files=[weights, labels_csv, *(features or ()), *_source_files(data)])
     if features is not None:
-        result = _score_feature_files(features, labels_csv, scoring)
+        result = _score_feature_files(features, labels_csv, scoring, unpaired=sources.unpaired)
+    elif len(data) == 2 or sources.unpaired:
+        a, b = data if len(data) == 2 else (f"images:{folder / 'clean'}", f"images:{folder / 'cluttered'}")
+        result = pipeline.score_sources(str(a), str(b), spec, weights=weights, layers=layers, extraction=extraction,
+                                        scoring=scoring, sources=sources, progress=not quiet)
     else:
-        result = pipeline.score_dataset(data, spec, weights=weights, layers=layers, extraction=extraction,
+        from ..sources import KINDS
+
+        if str(folder).partition(":")[0] in KINDS or "#" in str(folder):
+            raise click.UsageError(f"{folder} names one source; give two domains (DATA_A DATA_B) to score sources")
+        result = pipeline.score_dataset(folder, spec, weights=weights, layers=layers, extraction=extraction,
                                         scoring=scoring, progress=not quiet)
     result["gates"] = evaluate_gates(result, gates)
     write_result_outputs(result, json_path=json_path, report_path=report_path, drift_csv=drift_csv, tsne=scoring.tsne)
@@ -64,16 +83,30 @@ def score(data, spec, weights, layers, features, labels_csv, json_path, report_p
     raise_for_gates(result["gates"])
 
 
-def _score_feature_files(features, labels_csv, scoring):
+def _source_files(data):
+    """The paths that two source specs read (outputs must not overwrite them)."""
+    if len(data) != 2:
+        return []
+    from ..sources import parse_spec
+
+    return [parse_spec(str(d)).path for d in data]
+
+
+def _score_feature_files(features, labels_csv, scoring, unpaired=False):
     from .. import pipeline
     from ..data import read_labels_in_order
-    from ..scoring import load_feature_files
+    from ..scoring import _load_npy, load_feature_files
 
+    source = {"spec": f"features:{features[0]}", "name": Path(features[0]).stem, "path": str(Path(features[0]).parent)}
+    if unpaired:
+        if labels_csv is not None:
+            raise click.UsageError("--labels follows paired feature rows; it cannot be used with --unpaired")
+        return pipeline.score_unpaired_feature_arrays(_load_npy(features[0]), _load_npy(features[1]),
+                                                      scoring=scoring, source=source)
     clean, cluttered = load_feature_files(*features)
-    tasks = factors = names = None
+    tasks = factors = names = groups = None
     if labels_csv is not None:
         names, table = read_labels_in_order(labels_csv, clean.shape[0])
-        tasks, factors = table.tasks or None, table.factors or None
-    source = {"spec": f"features:{features[0]}", "name": Path(features[0]).stem, "path": str(Path(features[0]).parent)}
+        tasks, factors, groups = table.tasks or None, table.factors or None, table.groups
     return pipeline.score_feature_arrays(clean, cluttered, tasks=tasks, factors=factors, names=names, scoring=scoring,
-                                         source=source)
+                                         source=source, groups=groups)

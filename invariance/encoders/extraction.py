@@ -188,3 +188,96 @@ def _forward(run, encoder: Encoder, batch: torch.Tensor, layers: list[str], name
             )
         feats[layer] = value.cpu().numpy()
     return feats
+
+
+def _frame_tensor(preprocess: Preprocess, frame) -> torch.Tensor:
+    from PIL import Image
+
+    return preprocess(Image.fromarray(frame.image, mode="RGB"))
+
+
+def extract_frame_features(frames, encoder: Encoder, layers=None, *, options: ExtractionOptions | None = None,
+                           progress=True, total: int | None = None, label: str = "frames") -> dict:
+    """Features of a stream of frames (:class:`invariance.sources.Frame`), read lazily.
+
+    Frames are pulled from the iterator one batch at a time, preprocessed and passed
+    through the encoder, so memory holds one batch of images plus the feature rows,
+    whatever the size of the episode files. No feature cache: a frame has no file of its
+    own to key on (the source spec and frame index would do; left for the cache module).
+
+    Parameters
+    ----------
+    frames : iterable of Frame
+    encoder : Encoder
+    layers : list of str, optional
+        As :func:`extract_features`.
+    options : ExtractionOptions, optional
+        ``batch_size`` frames per forward pass.
+    progress : bool, callable or Reporter
+    total : int, optional
+        Frames expected, for the progress bar.
+    label : str
+        Name on the progress bar.
+
+    Returns
+    -------
+    dict
+        ``features`` ({layer: float32 (n, D)}), ``keys`` ([(episode, index)]) and
+        ``labels`` ({name: list of values, one per frame}).
+    """
+    options = options or ExtractionOptions()
+    if not isinstance(options, ExtractionOptions):
+        raise InvalidParameter("options", f"options={options!r} is not valid; pass an ExtractionOptions")
+    wanted, nodes = _validate_layers(encoder, layers)
+    run = _runner(encoder, wanted, nodes)
+    chunks = {layer: [] for layer in wanted}
+    keys, labels = [], {}
+    batches = _prepared_batches(iter(frames), encoder.preprocess, options.batch_size)
+    with as_reporter(progress).bar(total or 0, f"{label} {encoder.spec}") as bar, torch.inference_mode():
+        for batch in batches:
+            _frame_batch(batch, run, encoder, wanted, chunks, keys, labels)
+            bar.update(len(batch))
+    if not keys:
+        raise InvarianceError(f"no frames to extract features from in {label}; check the source and the stride")
+    return {"features": {layer: np.concatenate(chunks[layer]) for layer in wanted}, "keys": keys, "labels": labels}
+
+
+def _read_batch(frames, preprocess, size):
+    batch = []
+    for frame in frames:
+        batch.append((frame, _frame_tensor(preprocess, frame)))
+        if len(batch) == size:
+            break
+    return batch
+
+
+def _prepared_batches(frames, preprocess, size):
+    """Batches of (frame, tensor), the next one read and preprocessed on a helper thread
+    while the forward pass of the current one runs (file reads, JPEG/PIL and torch ops
+    release the GIL). At most two batches of images are held."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        pending = pool.submit(_read_batch, frames, preprocess, size)
+        while True:
+            batch = pending.result()  # re-raises a reader's error here, in order
+            if not batch:
+                return
+            pending = pool.submit(_read_batch, frames, preprocess, size)
+            yield batch
+
+
+def _frame_batch(batch, run, encoder, layers, chunks, keys, labels):
+    names = [f"{f.episode}#{f.index}" for f, _ in batch]
+    feats = _forward(run, encoder, torch.stack([t for _, t in batch]).to(encoder.device), layers, names)
+    for layer, value in feats.items():
+        chunks[layer].append(value)
+    start = len(keys)
+    for k, (frame, _) in enumerate(batch):
+        keys.append((frame.episode, frame.index))
+        for name, value in frame.labels.items():
+            # a label missing from earlier frames stays missing (NaN) for them
+            labels.setdefault(name, [float("nan")] * (start + k)).append(value)
+        for name, values in labels.items():
+            if len(values) < start + k + 1:
+                values.append(float("nan"))

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.spatial.distance import pdist, squareform
 
-from invariance.metrics.domain import _check_int, _validate_pairs
+from invariance.metrics.domain import _check_int, _validate_pairs, check_groups
 from invariance.metrics.probe import _expanded_levels
 
 # Clean rows used for the typical between-scene distance: 3,000 rows give 4.5 million
@@ -70,7 +70,7 @@ def _retrieval_top1(clean_unit, cluttered_unit):
     return hits / cluttered_unit.shape[0]
 
 
-def paired_drift(clean, cluttered, *, seed=0, resamples=BOOTSTRAP_RESAMPLES):
+def paired_drift(clean, cluttered, *, seed=0, resamples=BOOTSTRAP_RESAMPLES, groups=None):
     """Per-pair cosine drift relative to the typical distance between clean scenes.
 
     The drift of pair i is (1 - cos(clean_i, cluttered_i)) divided by the median
@@ -98,6 +98,8 @@ def paired_drift(clean, cluttered, *, seed=0, resamples=BOOTSTRAP_RESAMPLES):
         Seed of the bootstrap.
     resamples : int, default=2000
         Bootstrap resamples of the pairs (>= 100).
+    groups : array-like of shape (n_pairs,), optional
+        Group (episode) of each pair; the bootstrap then resamples whole groups.
 
     Returns
     -------
@@ -112,6 +114,7 @@ def paired_drift(clean, cluttered, *, seed=0, resamples=BOOTSTRAP_RESAMPLES):
     _check_int("resamples", resamples, 100)
     _check_int("seed", seed, 0)
     clean, cluttered = _validate_pairs(clean, cluttered, min_pairs=MIN_PAIRS)
+    groups = check_groups(groups, clean.shape[0])
     clean_norms = np.linalg.norm(clean.astype(np.float64, copy=False), axis=1)
     cluttered_norms = np.linalg.norm(cluttered.astype(np.float64, copy=False), axis=1)
     zero = (clean_norms == 0) | (cluttered_norms == 0)
@@ -133,12 +136,12 @@ def paired_drift(clean, cluttered, *, seed=0, resamples=BOOTSTRAP_RESAMPLES):
     # 1 - cos written as half the squared distance of unit vectors keeps it >= 0
     raw = _half_squared_distance(clean_unit, cluttered_unit)
     per_pair = raw / typical
-    interval = _bootstrap_ratio(raw, rows, scene, typical, seed, resamples)
+    interval = _bootstrap_ratio(raw, rows, scene, typical, seed, resamples, groups)
     return {
         "relative_drift": float(per_pair.mean()),
         "relative_drift_ci": interval,
-        "ci_method": f"expanded percentile bootstrap over pairs, mean drift and median "
-        f"scene distance both recomputed, {resamples} resamples, 95%",
+        "ci_method": f"expanded percentile bootstrap over {'pairs' if groups is None else 'groups (episodes)'}, "
+        f"mean drift and median scene distance both recomputed, {resamples} resamples, 95%",
         "typical_distance": typical,
         "per_pair": per_pair,
         "pair_retrieval_top1": _retrieval_top1(clean_unit, cluttered_unit),
@@ -175,7 +178,19 @@ def _resampled_typical(sorted_scene, influence, weights):
     return sorted_scene[low] + (position - low) * (sorted_scene[high] - sorted_scene[low])
 
 
-def _resampled_ratios(raw, rows, scene, typical, seed, resamples):
+def _pair_counts(rng, n, size, groups):
+    """Multiplicity of each pair in ``size`` resamples: pairs drawn, or whole groups drawn
+    (cluster bootstrap; Davison & Hinkley 1997, section 3.8) when ``groups`` is given."""
+    if groups is not None:
+        G = int(groups.max()) + 1
+        return rng.multinomial(G, np.full(G, 1.0 / G), size=size)[:, groups].astype(np.float64)
+    idx = rng.integers(0, n, size=(size, n))
+    return np.bincount(
+        (idx + n * np.arange(size)[:, None]).ravel(), minlength=size * n
+    ).reshape(size, n).astype(np.float64)
+
+
+def _resampled_ratios(raw, rows, scene, typical, seed, resamples, groups=None):
     """Relative drift of each pair resample: mean raw drift over the median scene distance.
 
     ``raw`` holds the per-pair cosine drifts, ``rows`` the clean rows behind the median and
@@ -194,19 +209,18 @@ def _resampled_ratios(raw, rows, scene, typical, seed, resamples):
     ratios = []
     for start in range(0, resamples, chunk):
         size = min(chunk, resamples - start)
-        idx = rng.integers(0, n, size=(size, n))
-        # multiplicity of each pair in each resample
-        counts = np.bincount(
-            (idx + n * np.arange(size)[:, None]).ravel(), minlength=size * n
-        ).reshape(size, n).astype(np.float64)
+        counts = _pair_counts(rng, n, size, groups)  # multiplicity of each pair
         typical_counts = counts if rows.size == n else counts[:, rows]
         medians = _resampled_typical(sorted_scene, influence, typical_counts)
-        ratios.append((counts @ raw) / n / np.maximum(medians, floor))
+        total = n if groups is None else counts.sum(axis=1)
+        ratios.append((counts @ raw) / total / np.maximum(medians, floor))
     return np.concatenate(ratios)
 
 
-def _bootstrap_ratio(raw, rows, scene, typical, seed, resamples):
-    """95% expanded percentile interval of the resampled relative drifts (Hesterberg 2015)."""
-    ratios = _resampled_ratios(raw, rows, scene, typical, seed, resamples)
-    low, high = np.percentile(ratios, _expanded_levels(raw.size))
+def _bootstrap_ratio(raw, rows, scene, typical, seed, resamples, groups=None):
+    """95% expanded percentile interval of the resampled relative drifts (Hesterberg 2015);
+    with groups the expanded interval's m is the number of groups."""
+    ratios = _resampled_ratios(raw, rows, scene, typical, seed, resamples, groups)
+    m = raw.size if groups is None else max(int(groups.max()) + 1, 2)
+    low, high = np.percentile(ratios, _expanded_levels(m))
     return [float(low), float(high)]

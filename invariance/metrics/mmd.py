@@ -13,7 +13,7 @@ import numpy as np
 from scipy.spatial.distance import pdist
 
 from invariance.errors import InvarianceError
-from invariance.metrics.domain import _check_int, _validate_pairs
+from invariance.metrics.domain import _check_int, _validate_pairs, _validate_samples, check_groups, grouping_info, sample_groups
 
 # Points used for the median heuristic: pdist of 3,000 points is 4.5 million distances
 # (36 MB), and the median of a larger sample moves little (common practice).
@@ -249,9 +249,13 @@ def _swap_statistics(H, signs):
     return np.einsum("bi,bi->b", prod, signs, dtype=np.float64) / (n * (n - 1))
 
 
-def _count_exceeding(H, observed, permutations, rng):
-    """How many of ``permutations`` random swap vectors reach the observed statistic."""
+def _count_exceeding(H, observed, permutations, rng, groups=None):
+    """How many of ``permutations`` random swap vectors reach the observed statistic.
+
+    With ``groups`` (int codes per pair) one sign per group, shared by its pairs.
+    """
     n = H.shape[0]
+    units = n if groups is None else int(groups.max()) + 1
     # a swap and its negation give the same statistic; count rounding-level ties as ties
     tol = 1e-9 * max(1.0, abs(observed))
     block = max(1, min(permutations, _BLOCK_BYTES // (2 * n * H.itemsize)))
@@ -259,7 +263,9 @@ def _count_exceeding(H, observed, permutations, rng):
     done = 0
     while done < permutations:
         size = min(block, permutations - done)
-        signs = rng.choice(np.array([-1.0, 1.0], dtype=H.dtype), size=(size, n))
+        signs = rng.choice(np.array([-1.0, 1.0], dtype=H.dtype), size=(size, units))
+        if groups is not None:
+            signs = signs[:, groups]
         exceed += int((_swap_statistics(H, signs) >= observed - tol).sum())
         done += size
     return exceed
@@ -321,7 +327,7 @@ class PairedKernel:
             return self._whole
         return self._whole[np.ix_(rows, rows)]
 
-    def test(self, indices=None, *, permutations=1000, seed=0):
+    def test(self, indices=None, *, permutations=1000, seed=0, groups=None):
         """Paired permutation test of MMD^2 on the pairs ``indices`` (default all).
 
         Parameters
@@ -332,6 +338,10 @@ class PairedKernel:
             Number B of random swap vectors.
         seed : int, default=0
             Seed of the pair subsample (above ``max_pairs``) and of the swap vectors.
+        groups : array-like of shape (n_pairs,), optional
+            Group (episode) of every pair of the whole kernel (not only of ``indices``):
+            one swap per group, shared by all its pairs, since frames of one episode are
+            not independent draws. The statistic is unchanged; only its null is.
 
         Returns
         -------
@@ -351,9 +361,14 @@ class PairedKernel:
             rows = rows[np.sort(rng.choice(rows.size, size=self.max_pairs, replace=False))]
             method = f"subsample of {rows.size} pairs"
         H = self._sub_matrix(rows)
+        codes = None
+        if groups is not None:
+            codes = check_groups(groups, self.n_pairs)
+            codes = np.unique(codes[rows], return_inverse=True)[1]
         observed = float(_swap_statistics(H, np.ones((1, rows.size)))[0])
-        exceed = _count_exceeding(H, observed, permutations, rng)
+        exceed = _count_exceeding(H, observed, permutations, rng, codes)
         return {
+            "grouping": grouping_info(codes, rows.size),
             "mmd2": observed,
             "p_value": (exceed + 1) / (permutations + 1),
             "permutations": permutations,
@@ -364,7 +379,7 @@ class PairedKernel:
 
 
 def paired_permutation_test(
-    clean, cluttered, *, permutations=1000, seed=0, bandwidth=None, max_pairs=MAX_PAIRS
+    clean, cluttered, *, permutations=1000, seed=0, bandwidth=None, max_pairs=MAX_PAIRS, groups=None
 ):
     """Permutation test of MMD^2 that swaps clean and cluttered within pairs.
 
@@ -404,4 +419,95 @@ def paired_permutation_test(
     if bandwidth is not None:
         bandwidth = _check_bandwidth(bandwidth)
     kernel = PairedKernel(clean, cluttered, bandwidth=bandwidth, max_pairs=max_pairs)
-    return kernel.test(permutations=permutations, seed=seed)
+    return kernel.test(permutations=permutations, seed=seed, groups=groups)
+
+
+def _unpaired_statistics(K, member):
+    """Unbiased MMD^2 (Gretton et al., JMLR 13, 2012, Lemma 6) for each row of ``member``.
+
+    ``K`` is the pooled kernel matrix with a zero diagonal; ``member`` (B x N, 0/1) marks
+    the rows of sample X in each labelling, the rest being Y. All labellings are three
+    quadratic forms with the one matrix.
+    """
+    x = member.astype(K.dtype, copy=False)
+    y = 1.0 - x
+    kx, ky = x @ K, y @ K
+    sxx = np.einsum("bi,bi->b", kx, x, dtype=np.float64)
+    syy = np.einsum("bi,bi->b", ky, y, dtype=np.float64)
+    sxy = np.einsum("bi,bi->b", kx, y, dtype=np.float64)
+    m, n = x.sum(1, dtype=np.float64), y.sum(1, dtype=np.float64)
+    return sxx / (m * (m - 1)) + syy / (n * (n - 1)) - 2.0 * sxy / (m * n)
+
+
+def _unpaired_subsample(codes, max_rows, rng):
+    """Rows kept (sorted) when the pooled sample exceeds ``max_rows``: a seeded row sample."""
+    if codes.size <= max_rows:
+        return np.arange(codes.size), "exact"
+    keep = np.sort(rng.choice(codes.size, size=max_rows, replace=False))
+    return keep, f"subsample of {max_rows} rows"
+
+
+def unpaired_permutation_test(a, b, *, groups_a=None, groups_b=None, permutations=1000, seed=0,
+                              bandwidth=None, max_rows=MAX_PAIRS):
+    """Two-sample MMD test of unpaired samples with the ordinary permutation null.
+
+    Unbiased MMD^2 with a Gaussian kernel at the median-heuristic bandwidth of the pooled
+    sample (Gretton, Borgwardt, Rasch, Schoelkopf & Smola, JMLR 13, 2012, Lemma 6); the
+    null draws by permuting the domain labels over the pooled sample (their section 8),
+    here over whole groups when groups are given: frames of one episode are correlated,
+    so they move together, which keeps the test exact when episodes are the independent
+    units. p = (b + 1) / (B + 1) (Phipson & Smyth 2010).
+
+    Parameters
+    ----------
+    a, b : ndarray of shape (n_a, d), (n_b, d)
+    groups_a, groups_b : array-like, optional
+        Group (episode) of each row; default each row alone.
+    permutations : int, default=1000
+    seed : int, default=0
+        Seed of the permutations and of a row subsample above ``max_rows``.
+    bandwidth : float, optional
+        Kernel length scale; default the median heuristic of the pooled rows.
+    max_rows : int, default=4000
+        Pooled rows kept at most (a seeded subsample bounds the N x N kernel).
+
+    Returns
+    -------
+    dict
+        ``mmd2``, ``p_value``, ``permutations``, ``bandwidth``, ``method``, ``rows_used``
+        ([n_a, n_b] after any subsample) and ``grouping``.
+    """
+    permutations = _check_int("permutations", permutations, 1)
+    _check_int("seed", seed, 0)
+    a, b = _validate_samples(a, b)
+    if min(a.shape[0], b.shape[0]) < MIN_PAIRS // 2:
+        raise InvarianceError(f"MMD needs at least {MIN_PAIRS // 2} rows per domain; got {a.shape[0]} and {b.shape[0]}")
+    codes = sample_groups(groups_a, groups_b, a.shape[0], b.shape[0])
+    is_b = np.r_[np.zeros(a.shape[0], bool), np.ones(b.shape[0], bool)]
+    rng = np.random.default_rng(seed)
+    keep, method = _unpaired_subsample(codes, _check_int("max_rows", max_rows, MIN_PAIRS), rng)
+    Z = np.vstack([a, b])[keep].astype(np.float64)
+    codes, is_b = np.unique(codes[keep], return_inverse=True)[1], is_b[keep]
+    bandwidth = median_bandwidth(Z) if bandwidth is None else _check_bandwidth(bandwidth)
+    K = gaussian_kernel(Z, Z, bandwidth)
+    np.fill_diagonal(K, 0.0)
+    in_a_of_group = np.ones(codes.max() + 1, dtype=bool)
+    in_a_of_group[codes[is_b]] = False
+    observed = float(_unpaired_statistics(K, (~is_b)[None, :])[0])
+    tol = 1e-9 * max(1.0, abs(observed))
+    block = max(1, min(permutations, _BLOCK_BYTES // (3 * Z.shape[0] * 8)))
+    exceed, done = 0, 0
+    while done < permutations:
+        size = min(block, permutations - done)
+        member = np.stack([in_a_of_group[rng.permutation(in_a_of_group.size)] for _ in range(size)])[:, codes]
+        exceed += int((_unpaired_statistics(K, member) >= observed - tol).sum())
+        done += size
+    return {
+        "mmd2": observed, "p_value": (exceed + 1) / (permutations + 1), "permutations": permutations,
+        "bandwidth": bandwidth, "method": method,
+        "rows_used": [int((~is_b).sum()), int(is_b.sum())],
+        "grouping": {"unit": "group" if groups_a is not None or groups_b is not None else "row",
+                     "groups": [int(np.unique(codes[~is_b]).size), int(np.unique(codes[is_b]).size)]},
+        "null": "domain labels permuted over the pooled sample"
+                + (" (whole groups)" if groups_a is not None or groups_b is not None else ""),
+    }

@@ -15,12 +15,12 @@ import numpy as np
 from scipy.stats import norm
 from scipy.stats import t as student_t
 from sklearn.linear_model import LogisticRegression, RidgeCV
-from sklearn.model_selection import train_test_split
+from sklearn.model_selection import GroupShuffleSplit, train_test_split
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 
 from invariance.errors import InvarianceError
-from invariance.metrics.domain import _check_int, _validate_pairs
+from invariance.metrics.domain import _check_int, _validate_pairs, _validate_samples, check_groups
 
 # Labelled pairs below which a held-out score says little (common practice).
 MIN_LABELLED_PAIRS = 10
@@ -131,12 +131,38 @@ def _labels(values, n_pairs):
     return kind, idx, y
 
 
-def _probe_one(clean, cluttered, values, seed, test_fraction, resamples):
+# Seeded group splits tried until the label varies on both sides (a class may live in a
+# few episodes only, so one draw can hold out a single class; common practice).
+_GROUP_SPLIT_TRIES = 20
+
+
+def _group_split(idx, groups, seed, test_fraction, y=None):
+    """Seeded split of whole groups (episodes): no group has rows on both sides.
+
+    scikit-learn's GroupShuffleSplit, not stratified by class; with labels ``y`` the first
+    of up to 20 seeded draws in which the label varies on both sides is taken (else the
+    first draw, which the caller then reports as not computable).
+    """
+    splitter = GroupShuffleSplit(n_splits=_GROUP_SPLIT_TRIES, test_size=test_fraction, random_state=seed)
+    splits = list(splitter.split(idx, groups=groups))
+    chosen = splits[0]
+    if y is not None:
+        varied = [s for s in splits if np.unique(y[s[0]]).size > 1 and np.unique(y[s[1]]).size > 1]
+        chosen = varied[0] if varied else chosen
+    return np.sort(chosen[0]), np.sort(chosen[1]), "split grouped by episode (not stratified)"
+
+
+def _probe_one(clean, cluttered, values, seed, test_fraction, resamples, groups=None):
     labels = _labels(values, clean.shape[0])
     if isinstance(labels, dict):
         return labels
     kind, idx, y = labels
-    pos_train, pos_test, note = _split(np.arange(idx.size), y, kind, seed, test_fraction)
+    if groups is None:
+        pos_train, pos_test, note = _split(np.arange(idx.size), y, kind, seed, test_fraction)
+    elif np.unique(groups[idx]).size < 2:
+        return {"not_computable": "the labelled pairs come from one group (episode); a grouped split needs 2"}
+    else:
+        pos_train, pos_test, note = _group_split(np.arange(idx.size), groups[idx], seed, test_fraction, y)
     if np.unique(y[pos_train]).size < 2 or np.unique(y[pos_test]).size < 2:
         return {
             "not_computable": "classes too rare to split into training and held-out pairs "
@@ -152,7 +178,8 @@ def _probe_one(clean, cluttered, values, seed, test_fraction, resamples):
         "baseline": np.full(test.size, _constant_prediction(y[pos_train], kind)),
     }
     point = {name: _score(kind, y_test, p) for name, p in preds.items()}
-    gap_ci, margin_low = _bootstrap(kind, y_test, preds, point, seed, resamples)
+    test_groups = None if groups is None else np.unique(groups[test], return_inverse=True)[1]
+    gap_ci, margin_low = _bootstrap(kind, y_test, preds, point, seed, resamples, test_groups)
     decodable = bool(margin_low > 0)
     out = {
         "kind": kind,
@@ -161,7 +188,7 @@ def _probe_one(clean, cluttered, values, seed, test_fraction, resamples):
         "cluttered": point["cluttered"],
         "gap": point["clean"] - point["cluttered"],
         "gap_ci": gap_ci,
-        "ci_method": _CI_METHOD[kind].format(resamples),
+        "ci_method": _CI_METHOD[kind].format(resamples) + ("" if groups is None else "; groups (episodes) resampled"),
         "baseline": point["baseline"],
         "decodable": decodable,
         "n_train": int(train.size),
@@ -265,12 +292,46 @@ def _interval(values, point, m, symmetric):
     return float(low), float(high)
 
 
-def _bootstrap(kind, y, preds, point, seed, resamples):
-    """95% interval of the gap and the lower end of the clean score's margin over baseline."""
-    gaps, margins = _resampled_differences(kind, y, preds, seed, resamples)
+def _weighted_scores(kind, y, preds, W):
+    """Accuracy or R^2 of each prediction under each row-weight vector (rows of ``W``).
+
+    A cluster bootstrap resample is a multiplicity per row (its group's draw count), so
+    the scores are weighted sums; R^2 = 1 - sum w (y - p)^2 / sum w (y - ybar_w)^2.
+    """
+    total = W.sum(axis=1)
+    if kind == "classification":
+        return {name: (W @ (p == y)) / total for name, p in preds.items()}
+    mean = (W @ y) / total
+    ss_tot = W @ (y**2) - total * mean**2
+    ss_tot[ss_tot <= 1e-12 * np.maximum(W @ (y**2), 1e-300)] = np.nan
+    return {name: 1.0 - (W @ ((y - p) ** 2)) / ss_tot for name, p in preds.items()}
+
+
+def _group_differences(kind, y, preds, groups, seed, resamples):
+    """Gap and margin per cluster-bootstrap resample: whole groups drawn with replacement
+    (Davison & Hinkley, Bootstrap Methods and their Application, 1997, section 3.8)."""
+    G = int(groups.max()) + 1
+    counts = np.random.default_rng(seed).multinomial(G, np.full(G, 1.0 / G), size=resamples)
+    res = _weighted_scores(kind, y, preds, counts[:, groups].astype(np.float64))
+    gaps, margins = res["clean"] - res["cluttered"], res["clean"] - res["baseline"]
+    ok = np.isfinite(gaps)
+    return gaps[ok], margins[ok]
+
+
+def _bootstrap(kind, y, preds, point, seed, resamples, groups=None):
+    """95% interval of the gap and the lower end of the clean score's margin over baseline.
+
+    With groups the resampled unit, and the m of the expanded interval, is the group.
+    """
+    if groups is None:
+        gaps, margins = _resampled_differences(kind, y, preds, seed, resamples)
+        m = y.size
+    else:
+        gaps, margins = _group_differences(kind, y, preds, groups, seed, resamples)
+        m = max(int(groups.max()) + 1, 2)
     symmetric = kind == "regression"
-    gap = _interval(gaps, point["clean"] - point["cluttered"], y.size, symmetric)
-    margin = _interval(margins, point["clean"] - point["baseline"], y.size, symmetric)
+    gap = _interval(gaps, point["clean"] - point["cluttered"], m, symmetric)
+    margin = _interval(margins, point["clean"] - point["baseline"], m, symmetric)
     return list(gap), margin[0]
 
 
@@ -282,7 +343,7 @@ _CI_METHOD = {
 
 
 def linear_probes(
-    clean, cluttered, tasks, *, seed=0, test_fraction=0.3, resamples=BOOTSTRAP_RESAMPLES
+    clean, cluttered, tasks, *, seed=0, test_fraction=0.3, resamples=BOOTSTRAP_RESAMPLES, groups=None
 ):
     """Fit linear probes on clean training pairs; score on held-out clean and cluttered.
 
@@ -305,6 +366,10 @@ def linear_probes(
         Fraction of labelled pairs held out, in (0, 1).
     resamples : int, default=2000
         Bootstrap resamples of the held-out pairs (>= 100).
+    groups : array-like of shape (n_pairs,), optional
+        Group (episode) of each pair: the split keeps whole groups on one side
+        (GroupShuffleSplit, not stratified) and the bootstrap resamples whole held-out
+        groups, with the expanded interval's m the number of held-out groups.
 
     Returns
     -------
@@ -339,7 +404,117 @@ def linear_probes(
     _check_int("seed", seed, 0)
     _check_int("resamples", resamples, 100)
     clean, cluttered = _validate_pairs(clean, cluttered)
+    groups = check_groups(groups, clean.shape[0])
     return {
-        str(name): _probe_one(clean, cluttered, values, seed, test_fraction, resamples)
+        str(name): _probe_one(clean, cluttered, values, seed, test_fraction, resamples, groups)
         for name, values in tasks.items()
+    }
+
+
+def _unpaired_resamples(kind, parts, seed, resamples):
+    """Gap (A held-out - B) and margin (A held-out - baseline) per cluster-bootstrap resample.
+
+    The held-out rows of A and the rows of B are independent samples, so each is resampled
+    by its own groups (Davison & Hinkley 1997, section 3.8); the baseline rides on A's.
+    """
+    rng = np.random.default_rng(seed)
+    scores = {}
+    for side, (y, preds, groups) in parts.items():
+        G = int(groups.max()) + 1
+        counts = rng.multinomial(G, np.full(G, 1.0 / G), size=resamples)
+        scores[side] = _weighted_scores(kind, y, preds, counts[:, groups].astype(np.float64))
+    gaps = scores["a"]["model"] - scores["b"]["model"]
+    margins = scores["a"]["model"] - scores["a"]["baseline"]
+    ok = np.isfinite(gaps) & np.isfinite(margins)
+    return gaps[ok], margins[ok]
+
+
+def _codes(groups, n):
+    g = check_groups(groups, n, what="rows")
+    return np.arange(n) if g is None else g
+
+
+def _unpaired_one(a, b, values_a, values_b, groups_a, groups_b, seed, test_fraction, resamples):
+    labels_a = _labels(values_a, a.shape[0])
+    if isinstance(labels_a, dict):
+        return labels_a
+    kind, idx_a, y_a = labels_a
+    values_b = np.asarray(values_b)
+    mask_b = _labelled(values_b, kind) if _kind(values_b) == kind else np.zeros(values_b.shape[0], bool)
+    idx_b = np.flatnonzero(mask_b)
+    if idx_b.size < MIN_LABELLED_PAIRS:
+        return {"not_computable": f"only {idx_b.size} rows of domain B carry this label as a {kind} target; "
+                                  f"need {MIN_LABELLED_PAIRS}"}
+    y_b = values_b[idx_b].astype(np.float64) if kind == "regression" else values_b[idx_b].astype(str)
+    if kind == "regression":  # the same scaling as A's (see _labels)
+        y_b = y_b / max(float(np.max(np.abs(values_a[idx_a].astype(np.float64)))), np.finfo(float).tiny)
+    ga = groups_a[idx_a]
+    if np.unique(ga).size < 2:
+        return {"not_computable": "the labelled rows of domain A come from one group; a grouped split needs 2"}
+    train, test, note = _group_split(np.arange(idx_a.size), ga, seed, test_fraction, y_a)
+    if np.unique(y_a[train]).size < 2 or np.unique(y_a[test]).size < 2:
+        return {"not_computable": "the label does not vary on both sides of domain A's split; add labelled episodes"}
+    model = make_probe(kind).fit(a[idx_a[train]], y_a[train])
+    base = _constant_prediction(y_a[train], kind)
+    parts = {
+        "a": (y_a[test], {"model": model.predict(a[idx_a[test]]), "baseline": np.full(test.size, base)},
+              np.unique(ga[test], return_inverse=True)[1]),
+        "b": (y_b, {"model": model.predict(b[idx_b])}, np.unique(groups_b[idx_b], return_inverse=True)[1]),
+    }
+    point = {"clean": _score(kind, y_a[test], parts["a"][1]["model"]),
+             "cluttered": _score(kind, y_b, parts["b"][1]["model"]),
+             "baseline": _score(kind, y_a[test], parts["a"][1]["baseline"])}
+    gaps, margins = _unpaired_resamples(kind, parts, seed, resamples)
+    m = max(2, min(int(parts["a"][2].max()) + 1, int(parts["b"][2].max()) + 1))
+    symmetric = kind == "regression"
+    gap_ci = _interval(gaps, point["clean"] - point["cluttered"], m, symmetric)
+    decodable = bool(_interval(margins, point["clean"] - point["baseline"], m, symmetric)[0] > 0)
+    out = {"kind": kind, "metric": "accuracy" if kind == "classification" else "r2",
+           "clean": point["clean"], "cluttered": point["cluttered"], "gap": point["clean"] - point["cluttered"],
+           "gap_ci": list(gap_ci), "ci_method": "cluster bootstrap, held-out groups of A and groups of B resampled "
+           f"independently, expanded percentile, {resamples} resamples, 95%",
+           "baseline": point["baseline"], "decodable": decodable, "n_train": int(train.size),
+           "n_test": int(test.size), "n_test_b": int(idx_b.size), "trained_on": "A"}
+    out["note"] = note if decodable else f"{note}; {NOT_DECODABLE}"
+    return out
+
+
+def unpaired_probes(a, b, tasks_a, tasks_b, *, groups_a=None, groups_b=None, seed=0, test_fraction=0.3,
+                    resamples=BOOTSTRAP_RESAMPLES):
+    """Linear probes trained on domain A, scored on held-out A and on all of domain B.
+
+    For unpaired domains (no scene in common) the probe of :func:`linear_probes` cannot
+    score the same scenes twice; instead it is fitted on a grouped training split of A
+    and scored on A's held-out groups (``clean``, the in-domain score) and on every
+    labelled row of B (``cluttered``, the transfer score; B is never trained on). The
+    gap is their difference (Alain & Bengio 2016 for probing; the A-to-B transfer reading
+    is common practice in domain adaptation, e.g. Ganin et al., JMLR 2016).
+
+    Parameters
+    ----------
+    a, b : ndarray of shape (n_a, d), (n_b, d)
+    tasks_a, tasks_b : dict of str to ndarray
+        Labels per row of each domain; only labels present in both are probed.
+    groups_a, groups_b : array-like, optional
+        Group (episode) per row; default every row its own group.
+    seed, test_fraction, resamples
+        As :func:`linear_probes`.
+
+    Returns
+    -------
+    dict of str to dict
+        Per shared label the keys of :func:`linear_probes` (``clean`` = held-out A,
+        ``cluttered`` = B) plus ``n_test_b`` and ``trained_on``; or not computable.
+    """
+    for name, tasks in (("tasks_a", tasks_a), ("tasks_b", tasks_b)):
+        if not isinstance(tasks, dict):
+            raise InvarianceError(f"{name} must be a dict of label name to array; got {type(tasks).__name__}")
+    _check_int("seed", seed, 0)
+    _check_int("resamples", resamples, 100)
+    a, b = _validate_samples(a, b)
+    ga, gb = _codes(groups_a, a.shape[0]), _codes(groups_b, b.shape[0])
+    return {
+        str(name): _unpaired_one(a, b, np.asarray(tasks_a[name]), np.asarray(tasks_b[name]), ga, gb, seed,
+                                 float(test_fraction), resamples)
+        for name in tasks_a if name in tasks_b
     }
