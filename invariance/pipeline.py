@@ -21,7 +21,7 @@ from .errors import InvalidParameter, InvarianceError
 from .data import label_columns
 from .options import AlignmentOptions, EncoderEntry, ExtractionOptions, ScoringOptions, options_or_default
 from .progress import as_reporter
-from .results import RESULT_SCHEMA
+from .results import RESULT_SCHEMA, add_caution
 
 DEFAULT_LAYER = "output"
 
@@ -92,7 +92,7 @@ def _load(spec: str, weights, extraction: ExtractionOptions, image_size=None):
 
 def score_dataset(data, spec: str, *, weights=None, layers: Sequence[str] | None = None, name: str | None = None,
                   extraction: ExtractionOptions | None = None, scoring: ScoringOptions | None = None,
-                  progress=True, pairs=None, encoder=None) -> dict:
+                  progress=True, pairs=None, encoder=None, output_tolerance=None) -> dict:
     """Extract features of every pair with one encoder and score them.
 
     Parameters
@@ -114,11 +114,21 @@ def score_dataset(data, spec: str, *, weights=None, layers: Sequence[str] | None
         See :mod:`invariance.progress`.
     pairs, encoder : optional
         An already discovered PairSet or loaded Encoder (``compare_encoders`` shares them).
+    output_tolerance : sequence of float or str, optional
+        The spec is a whole policy: also report its output drift per output dimension in
+        the output's own units (``output_drift``), with the share of pairs whose change
+        exceeds this tolerance (see :func:`invariance.metrics.output_drift.output_drift`).
 
     Returns
     -------
     dict
-        A result in the ``invariance.result/1`` schema.
+        A result in the ``invariance.result/1`` schema, with the safety ``caution``.
+
+    Notes
+    -----
+    When every layer of this exact request is in the feature cache (same spec, files,
+    options and images; see :mod:`invariance.feature_index`), the encoder is not loaded at
+    all: a repeated score costs the statistics only.
     """
     extraction = options_or_default(extraction, ExtractionOptions, "extraction")
     scoring = options_or_default(scoring, ScoringOptions, "scoring")
@@ -130,21 +140,44 @@ def score_dataset(data, spec: str, *, weights=None, layers: Sequence[str] | None
                              progress=progress, encoder=encoder)
     if pairs is None:
         pairs = _discover(data, extraction)
-    from .encoders import extract_features  # after the data checks: bad data fails fast
-
-    if encoder is None:
-        encoder = _load(spec, weights, extraction)
     layer_list = list(layers) if layers else [DEFAULT_LAYER]
     start = time.perf_counter()
-    features = extract_features(pairs, encoder, layers=layer_list, options=extraction, progress=progress)
+    features, description, encoder = _features_of(spec, weights, pairs, layer_list, extraction, progress, encoder,
+                                                  need_encoder=output_tolerance is not None)
     timings = {"extract": time.perf_counter() - start}
     start = time.perf_counter()
     result = _score_layers(features, layer_list, pairs, scoring)
     timings["score"] = time.perf_counter() - start
-    result["encoder"] = {**encoder.describe(), "name": name or spec, "layer": layer_list[-1]}
+    if output_tolerance is not None:
+        from .explain import policy_output_drift
+
+        result["output_drift"] = policy_output_drift(pairs, encoder, output_tolerance,
+                                                     batch_size=extraction.batch_size, progress=progress)
+    result["encoder"] = {**description, "name": name or spec, "layer": layer_list[-1]}
     result["dataset"] = _dataset_info(pairs)
-    result["environment"] = environment_info(seed=scoring.seed, device=str(encoder.device), timings=timings)
-    return result
+    result["environment"] = environment_info(seed=scoring.seed, device=description.get("device"), timings=timings)
+    return add_caution(result)
+
+
+def _features_of(spec, weights, pairs, layer_list, extraction, progress, encoder, *, need_encoder=False):
+    """``(features, encoder description, encoder or None)``: from the request index when it can, else extracted."""
+    from . import feature_index
+
+    identity = None
+    if encoder is None:
+        identity = feature_index.request_identity(spec, weights=weights, image_size=extraction.image_size,
+                                                  trusted_code=extraction.trusted_code)
+        hit = None if need_encoder else feature_index.recall(extraction.cache_dir, identity, pairs, layer_list)
+        if hit is not None:
+            as_reporter(progress).note(f"{spec}: every layer found in the feature cache; the encoder was not loaded")
+            return hit[0], hit[1], None
+    from .encoders import extract_features  # after the data checks: bad data fails fast
+
+    if encoder is None:
+        encoder = _load(spec, weights, extraction)
+    features = extract_features(pairs, encoder, layers=layer_list, options=extraction, progress=progress)
+    feature_index.remember(extraction.cache_dir, identity, pairs, encoder, layer_list)
+    return features, encoder.describe(), encoder
 
 
 def _score_layers(features: dict, layer_list, pairs, scoring: ScoringOptions) -> dict:
@@ -200,14 +233,14 @@ def score_feature_arrays(clean: np.ndarray, cluttered: np.ndarray, *, tasks=None
                             groups=groups)
     elapsed = time.perf_counter() - start
     source = source or {}
-    return {
+    return add_caution({
         "schema": RESULT_SCHEMA,
         **scored,
         "encoder": {"spec": source.get("spec", "features"), "name": source.get("name", "features"),
                     "layer": DEFAULT_LAYER},
         "dataset": {"path": source.get("path"), "pairs": int(np.asarray(clean).shape[0])},
         "environment": environment_info(seed=scoring.seed, timings={"score": elapsed}),
-    }
+    })
 
 
 def _entry(item) -> EncoderEntry:
@@ -225,18 +258,23 @@ def _entry(item) -> EncoderEntry:
 
 
 def _domain_runner(data, data_b, extraction, scoring, sources, reporter):
-    """``(description, run(entry, encoder))`` scoring one encoder on the data."""
+    """``(description, run(entry))`` scoring one encoder on the data."""
     unpaired = sources is not None and sources.unpaired
     if data_b is not None or unpaired or _unpaired_folder(data):
         a, b = (data, data_b) if data_b is not None else (f"images:{Path(data) / 'clean'}",
                                                           f"images:{Path(data) / 'cluttered'}")
-        return "two domains", lambda entry, encoder: score_sources(
+        return "two domains", lambda entry: score_sources(
             str(a), str(b), entry.spec, weights=entry.weights, layers=entry.layers, name=entry.name,
-            extraction=extraction, scoring=scoring, sources=sources, progress=reporter, encoder=encoder)
+            extraction=extraction, scoring=scoring, sources=sources, progress=reporter,
+            encoder=_load(entry.spec, entry.weights, extraction, entry.image_size))
+    from dataclasses import replace
+
     pairs = _discover(data, extraction)
-    return f"{len(pairs)} pairs", lambda entry, encoder: score_dataset(
-        data, entry.spec, weights=entry.weights, layers=entry.layers, name=entry.name, extraction=extraction,
-        scoring=scoring, progress=reporter, pairs=pairs, encoder=encoder)
+    # No encoder passed: score_dataset loads it only when the feature cache cannot serve it.
+    return f"{len(pairs)} pairs", lambda entry: score_dataset(
+        data, entry.spec, weights=entry.weights, layers=entry.layers, name=entry.name,
+        extraction=replace(extraction, image_size=entry.image_size or extraction.image_size),
+        scoring=scoring, progress=reporter, pairs=pairs)
 
 
 def compare_encoders(data, encoders: Sequence, *, extraction: ExtractionOptions | None = None,
@@ -274,14 +312,13 @@ def compare_encoders(data, encoders: Sequence, *, extraction: ExtractionOptions 
     for entry in entries:
         reporter.note(f"scoring {entry.label} on {described}")
         try:
-            encoder = _load(entry.spec, entry.weights, extraction, entry.image_size)
-            results.append(run(entry, encoder))
+            results.append(run(entry))
         except InvarianceError as exc:
             failures.append({"spec": entry.spec, "name": entry.label, "error": str(exc)})
             reporter.note(f"  failed: {exc}")
     if not results:
         raise InvarianceError("every encoder failed: " + " | ".join(f"{f['name']}: {f['error']}" for f in failures))
-    return make_comparison(results, failures=failures)
+    return add_caution(make_comparison(results, failures=failures))
 
 
 def align_dataset(data, spec: str, *, out, weights=None, alignment: AlignmentOptions | None = None,
@@ -307,7 +344,7 @@ def align_dataset(data, spec: str, *, out, weights=None, alignment: AlignmentOpt
     outcome = align_encoder(pairs, encoder, out=out, options=alignment, scoring=scoring, extraction=extraction,
                             progress=progress)
     elapsed = time.perf_counter() - start
-    return {
+    return add_caution({
         "schema": RESULT_SCHEMA,
         "encoder": {**encoder.describe(), "name": f"{spec} aligned", "spec": f"checkpoint:{out}", "source_spec": spec,
                     "layer": DEFAULT_LAYER},
@@ -315,7 +352,7 @@ def align_dataset(data, spec: str, *, out, weights=None, alignment: AlignmentOpt
         "metrics": outcome["after"],
         "alignment": outcome,
         "environment": environment_info(seed=scoring.seed, device=str(encoder.device), timings={"align": elapsed}),
-    }
+    })
 
 
 def _unpaired_folder(data) -> bool:
@@ -442,7 +479,7 @@ def score_sources(source_a, source_b, spec: str, *, weights=None, layers: Sequen
     if domains.skipped:
         result["dataset"]["skipped_unpaired"] = len(domains.skipped)
     result["environment"] = environment_info(seed=scoring.seed, device=str(encoder.device), timings=timings)
-    return result
+    return add_caution(result)
 
 
 def score_unpaired_feature_arrays(a: np.ndarray, b: np.ndarray, *, groups_a=None, groups_b=None,
@@ -472,11 +509,11 @@ def score_unpaired_feature_arrays(a: np.ndarray, b: np.ndarray, *, groups_a=None
     scored = score_unpaired_features(a, b, groups_a=groups_a, groups_b=groups_b, options=scoring)
     elapsed = time.perf_counter() - start
     source = source or {}
-    return {
+    return add_caution({
         "schema": RESULT_SCHEMA, **scored,
         "encoder": {"spec": source.get("spec", "features"), "name": source.get("name", "features"),
                     "layer": DEFAULT_LAYER},
         "dataset": {"path": source.get("path"), "pairs": 0, "pairing": "unpaired",
                     "frames": [int(np.asarray(a).shape[0]), int(np.asarray(b).shape[0])]},
         "environment": environment_info(seed=scoring.seed, timings={"score": elapsed}),
-    }
+    })

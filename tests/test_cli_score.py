@@ -185,3 +185,70 @@ def test_unpaired_feature_files_of_different_lengths(tmp_path):
     data = json.loads(out.read_text())
     assert data["pairing"] == "unpaired" and data["dataset"]["frames"] == [80, 50]
     assert data["metrics"]["mmd"]["p_value"] < 0.05 and "cka" in data["not_computed"]
+
+
+# --------------------------------------------------------------------------- images: name, warm re-score, policy
+
+
+@pytest.fixture(scope="module")
+def scene_set(tmp_path_factory):
+    from invariance.scenes import generate_scenes
+
+    root = tmp_path_factory.mktemp("scenes") / "set"
+    generate_scenes(root, pairs=12, size=32, seed=3)
+    return root
+
+
+_IMAGES = ["--encoder", "python:invariance.zoo:workbench_cnn", "--image-size", "32", "--permutations", "20", "--quiet"]
+
+
+def test_name_labels_the_result(tmp_path, scene_set):
+    out = tmp_path / "r.json"
+    res = _run(["score", str(scene_set), *_IMAGES, "--no-cache", "--name", "bench CNN", "--json", str(out)])
+    assert res.exit_code == 0, res.output
+    result = json.loads(out.read_text())
+    assert result["encoder"]["name"] == "bench CNN" and result["caution"] == SAFETY_CAUTION
+
+
+def test_a_warm_rescore_never_loads_the_encoder(tmp_path, scene_set, monkeypatch):
+    # Issue "statistics calibrated at the sizes users have": a repeat is served from the
+    # feature cache through the request index, without importing torch or building the model.
+    from invariance import pipeline
+
+    cache = tmp_path / "cache"
+    first, second = tmp_path / "a.json", tmp_path / "b.json"
+    res = _run(["score", str(scene_set), *_IMAGES, "--cache-dir", str(cache), "--json", str(first)])
+    assert res.exit_code == 0, res.output
+
+    def no_load(*args, **kwargs):
+        raise AssertionError("the encoder was loaded on a warm re-score")
+
+    monkeypatch.setattr(pipeline, "_load", no_load)
+    res = _run(["score", str(scene_set), *_IMAGES, "--cache-dir", str(cache), "--json", str(second)])
+    assert res.exit_code == 0, res.output
+    a, b = json.loads(first.read_text()), json.loads(second.read_text())
+    assert a["metrics"] == b["metrics"] and a["encoder"] == b["encoder"]
+    # another image size is another request: it must load (and here, fail loudly)
+    with pytest.raises(AssertionError, match="loaded on a warm re-score"):
+        _run(["score", str(scene_set), *_IMAGES[:-5], "--image-size", "48", "--permutations", "20", "--quiet",
+              "--cache-dir", str(cache)])
+
+
+def test_output_tolerance_of_the_wrong_length_names_the_option(tmp_path, scene_set):
+    out = tmp_path / "r.json"
+    res = _run(["score", str(scene_set), *_IMAGES, "--no-cache", "--output-tolerance", "0.1,0.1", "--json", str(out)])
+    assert res.exit_code == 1
+    assert "--output-tolerance has 2 value(s) but the policy outputs" in res.output
+    assert not out.exists()
+
+
+def test_output_tolerance_reports_output_drift_with_the_caution(tmp_path, scene_set):
+    # The workbench CNN's pooled output is its "policy output" here (128 numbers per image);
+    # the per-dimension figures are checked against numpy in tests/test_output_drift.py.
+    out = tmp_path / "r.json"
+    res = _run(["score", str(scene_set), *_IMAGES, "--no-cache", "--output-tolerance", ",".join(["0.05"] * 128),
+                "--json", str(out)])
+    assert res.exit_code == 0, res.output
+    drift = json.loads(out.read_text())["output_drift"]
+    assert drift["dimensions"] == 128 and drift["pairs"] == 12
+    assert SAFETY_CAUTION.split(".")[0] in res.output

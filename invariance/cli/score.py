@@ -8,7 +8,7 @@ import click
 
 from ._print import print_summary
 from ._sources import source_options
-from ._shared import (EXIT_CODES_HELP, check_outputs, encoder_option, extraction_options, gate_options,
+from ._shared import (EXIT_CODES_HELP, check_outputs, say, encoder_option, extraction_options, gate_options,
                       handle_errors, json_option, quiet_option, report_option, scoring_options, weights_option,
                       write_result_outputs)
 
@@ -25,14 +25,19 @@ from ._shared import (EXIT_CODES_HELP, check_outputs, encoder_option, extraction
 @json_option
 @report_option
 @click.option("--drift-csv", type=click.Path(dir_okay=False, path_type=Path), help="Write per-pair drift (file, drift) here.")
+@click.option("--name", default=None, help="Display name in tables and the report [default: the spec].")
+@click.option("--output-tolerance", default=None, metavar="T1,T2,...",
+              help="The encoder is a whole policy (one output vector per image): also report how far its output "
+                   "moves per dimension, in the output's units, and the share of pairs moving more than these "
+                   "tolerances (one per output dimension).")
 @scoring_options()
 @gate_options
 @extraction_options
 @source_options
 @quiet_option
 @handle_errors
-def score(data, spec, weights, layers, features, labels_csv, json_path, report_path, drift_csv, scoring, gates,
-          extraction, sources, quiet):
+def score(data, spec, weights, layers, features, labels_csv, json_path, report_path, drift_csv, name, output_tolerance,
+          scoring, gates, extraction, sources, quiet):
     """Measure how differently an encoder sees the clean and cluttered views of the same scenes.
 
     DATA is a folder with clean/ and cluttered/ holding the same file names (the two views
@@ -40,7 +45,7 @@ def score(data, spec, weights, layers, features, labels_csv, json_path, report_p
     path columns. Instead of DATA and --encoder, --features scores features you computed.
 
     Reports a domain classifier (held-out accuracy, 95% interval, proxy A-distance, p-value),
-    MMD with a paired permutation test, paired drift and pair retrieval, linear CKA, and a
+    MMD with a paired permutation test, paired drift and pair retrieval, debiased CKA, and a
     linear probe per label (trained on clean, tested on cluttered). With factor_*/level
     columns in labels.csv, every metric is also broken down per factor value and level.
     Two DATA arguments are two domains (DATA_A the reference): source specs such as
@@ -62,24 +67,38 @@ def score(data, spec, weights, layers, features, labels_csv, json_path, report_p
     if features is not None and (data or spec is not None):
         raise click.UsageError("--features replaces DATA and --encoder; give one or the other")
     folder = data[0] if len(data) == 1 else None
+    tolerance = None
+    if output_tolerance is not None:
+        from ..metrics.output_drift import parse_tolerance
+
+        if features is not None or len(data) == 2 or sources.unpaired:
+            raise click.UsageError("--output-tolerance needs paired images and a policy (DATA and --encoder)")
+        tolerance = parse_tolerance(output_tolerance)
     check_outputs({"--json": json_path, "--report": report_path, "--drift-csv": drift_csv}, data=folder,
                   specs=[spec or ""], files=[weights, labels_csv, *(features or ()), *_source_files(data)])
     if features is not None:
         result = _score_feature_files(features, labels_csv, scoring, unpaired=sources.unpaired)
+        if name:
+            result["encoder"]["name"] = name
     elif len(data) == 2 or sources.unpaired:
         a, b = data if len(data) == 2 else (f"images:{folder / 'clean'}", f"images:{folder / 'cluttered'}")
-        result = pipeline.score_sources(str(a), str(b), spec, weights=weights, layers=layers, extraction=extraction,
-                                        scoring=scoring, sources=sources, progress=not quiet)
+        result = pipeline.score_sources(str(a), str(b), spec, weights=weights, layers=layers, name=name,
+                                        extraction=extraction, scoring=scoring, sources=sources, progress=not quiet)
     else:
         from ..sources import KINDS
 
         if str(folder).partition(":")[0] in KINDS or "#" in str(folder):
             raise click.UsageError(f"{folder} names one source; give two domains (DATA_A DATA_B) to score sources")
-        result = pipeline.score_dataset(folder, spec, weights=weights, layers=layers, extraction=extraction,
-                                        scoring=scoring, progress=not quiet)
+        result = pipeline.score_dataset(folder, spec, weights=weights, layers=layers, name=name, extraction=extraction,
+                                        scoring=scoring, progress=not quiet, output_tolerance=tolerance)
     result["gates"] = evaluate_gates(result, gates)
     write_result_outputs(result, json_path=json_path, report_path=report_path, drift_csv=drift_csv, tsne=scoring.tsne)
     print_summary(result)
+    if "output_drift" in result:
+        from ..metrics.output_drift import describe_output_drift
+
+        for line in describe_output_drift(result["output_drift"]):
+            say(line)
     raise_for_gates(result["gates"])
 
 
