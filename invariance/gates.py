@@ -73,10 +73,14 @@ def _check(layer: str, task: str | None, words: str, entry, key: str, ci_key: st
     return out
 
 
-def _layer_checks(name: str, layer: str, metrics: dict, threshold: float, collapsed: str | None) -> list[dict]:
+def _layer_checks(name: str, layer: str, metrics: dict, threshold: float, collapsed: str | None,
+                  not_computed: dict) -> list[dict]:
     group, key, ci_key, words = GATE_METRICS[name]
     if group != "probe" or collapsed:
-        return [_check(layer, None, words, metrics.get(group), key, ci_key, threshold, collapsed)]
+        entry = metrics.get(group)
+        if entry is None and isinstance(not_computed.get(group), str):
+            entry = {"not_computable": not_computed[group]}  # e.g. drift of unpaired domains, with its reason
+        return [_check(layer, None, words, entry, key, ci_key, threshold, collapsed)]
     probes = metrics.get("probe")
     if not isinstance(probes, dict) or "not_computable" in probes or not probes:
         return [_check(layer, None, words, probes if isinstance(probes, dict) and probes else None,
@@ -118,11 +122,12 @@ def evaluate_gates(result: dict, gates: Gates | None) -> dict:
     if not isinstance(gates, Gates):
         raise InvalidParameter("gates", f"gates={gates!r} is not valid; pass a Gates")
     collapsed = {layer: collapse_reason(m, result.get("warnings") or ()) for layer, m in scored_layers(result).items()}
+    not_computed = result.get("not_computed") if isinstance(result.get("not_computed"), dict) else {}
     out = {}
     for name, threshold in gates.thresholds().items():
         checks = []
         for layer, metrics in scored_layers(result).items():
-            checks += _layer_checks(name, layer, metrics, float(threshold), collapsed[layer])
+            checks += _layer_checks(name, layer, metrics, float(threshold), collapsed[layer], not_computed)
         worst = min(checks, key=lambda c: (c["passed"], -(c["bound"] if c["bound"] is not None else float("inf"))))
         out[name] = {"threshold": float(threshold), "value": worst["value"], "passed": all(c["passed"] for c in checks),
                      "bound": worst["bound"], "layer": worst["layer"], "task": worst["task"],

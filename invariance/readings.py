@@ -438,7 +438,15 @@ def _mmd_row(m: dict) -> Row:
                                   "that they are the same",
     }.get(reading.words, "the permutation test did not report a p-value")
     return ("MMD^2", f"{format_number(m['mmd2'], 4)} ({p})", "",
-            f"{reading.words}: {why} (within-pair permutation test, {p}; its own bandwidth per encoder)")
+            f"{reading.words}: {why} ({_mmd_null(m)}, {p}; its own bandwidth per encoder)")
+
+
+def _mmd_null(m: dict) -> str:
+    """How the MMD test's null was drawn: views swapped within pairs, or labels over whole groups."""
+    null = m.get("null")
+    if isinstance(null, str) and "pool" in null:
+        return "permutation of domain labels over whole groups"
+    return "within-pair permutation test"
 
 
 def _drift_rows(m: dict) -> list[Row]:

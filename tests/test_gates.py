@@ -98,3 +98,17 @@ def test_cli_prints_a_failed_gate_as_a_result_not_an_error(tmp_path):
     assert res.output.index("caution: a passed gate is a regression check", passed) > passed
     written = json.loads(out.read_text())
     assert written["caution"] == SAFETY_CAUTION and written["gates"]["max_domain_accuracy"]["bound"] > 0.6
+
+
+def test_unpaired_results_fail_the_drift_gate_with_the_reason_it_was_not_computed(tmp_path):
+    # Unpaired domains have no drift; the gate fails closed and says why, in one line.
+    rng = np.random.default_rng(0)
+    a, b = tmp_path / "a.npy", tmp_path / "b.npy"
+    np.save(a, rng.normal(size=(60, 8)).astype(np.float32))
+    np.save(b, rng.normal(size=(70, 8)).astype(np.float32))
+    res = CliRunner().invoke(cli, ["score", "--features", str(a), str(b), "--unpaired", "--permutations", "50",
+                                   "--max-relative-drift", "0.5"])
+    assert res.exit_code == 3
+    assert "frames=[60, 70]" in res.output  # not "pairs=0"
+    assert "gate failed: max_relative_drift" in res.output and "needs the two views of one scene" in res.output
+    assert "permutation of domain labels over whole groups" in res.output

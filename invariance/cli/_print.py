@@ -29,8 +29,12 @@ def print_summary(result) -> None:
     from ..verdict import plain, verdict
 
     enc = result.get("encoder", {})
-    pairs = result["dataset"].get("pairs")
-    say(f"{enc.get('name') or enc.get('spec')}  headline layer={enc.get('layer')}  pairs={pairs}")
+    dataset = result["dataset"]
+    pairs = dataset.get("pairs")
+    frames = dataset.get("frames")
+    size = (f"frames={frames}" if dataset.get("pairing") == "unpaired" and isinstance(frames, list)
+            else f"pairs={pairs}")
+    say(f"{enc.get('name') or enc.get('spec')}  headline layer={enc.get('layer')}  {size}")
     say(f"verdict: {plain(verdict([result]))}")
     layers = scored_layers(result)
     header = ("metric", "value", "95% interval", "reading")
