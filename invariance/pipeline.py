@@ -51,14 +51,15 @@ def environment_info(*, seed: int, device: str | None = None, command: str | Non
         "command": command if command is not None else " ".join(["invariance", *sys.argv[1:]]),
         "timings_s": {k: round(float(v), 3) for k, v in (timings or {}).items()},
     }
-    try:
-        import torch
-        import torchvision
+    # Installed versions from the package metadata: importing torch only to read its version
+    # would cost a warm re-score, which never runs the encoder, seconds.
+    from importlib import metadata
 
-        info["torch"] = torch.__version__
-        info["torchvision"] = torchvision.__version__
-    except ImportError:  # the --features path needs no torch
-        pass
+    for package in ("torch", "torchvision"):
+        try:
+            info[package] = metadata.version(package)
+        except metadata.PackageNotFoundError:  # the --features path needs no torch
+            pass
     return info
 
 
@@ -146,7 +147,7 @@ def score_dataset(data, spec: str, *, weights=None, layers: Sequence[str] | None
                                                   need_encoder=output_tolerance is not None)
     timings = {"extract": time.perf_counter() - start}
     start = time.perf_counter()
-    result = _score_layers(features, layer_list, pairs, scoring)
+    result = _score_layers(features, layer_list, pairs, scoring, cache_dir=extraction.cache_dir)
     timings["score"] = time.perf_counter() - start
     if output_tolerance is not None:
         from .explain import policy_output_drift
@@ -180,22 +181,28 @@ def _features_of(spec, weights, pairs, layer_list, extraction, progress, encoder
     return features, encoder.describe(), encoder
 
 
-def _score_layers(features: dict, layer_list, pairs, scoring: ScoringOptions) -> dict:
+def _score_layers(features: dict, layer_list, pairs, scoring: ScoringOptions, cache_dir=None) -> dict:
     from dataclasses import replace
 
+    from . import score_cache
+    from .data import pair_groups
     from .scoring import score_features
 
-    from .data import pair_groups
-
     tasks, factors = label_columns(pairs)
-    groups = pair_groups(pairs)
-    per_layer = {}
-    for layer in layer_list:
-        clean, cluttered = features[layer]
-        # t-SNE only for the layer whose projection the report draws
-        options = replace(scoring, tsne=scoring.tsne and layer == layer_list[-1])
-        per_layer[layer] = score_features(clean, cluttered, tasks=tasks, factors=factors, names=list(pairs.names),
-                                          options=options, groups=groups)
+    groups, names = pair_groups(pairs), list(pairs.names)
+    key = score_cache.score_key(features, layer_list, tasks=tasks, factors=factors, names=names, groups=groups,
+                                options=scoring) if cache_dir is not None else None
+    per_layer = score_cache.load(cache_dir, key) if key else None
+    if per_layer is None:
+        per_layer = {}
+        for layer in layer_list:
+            clean, cluttered = features[layer]
+            # t-SNE only for the layer whose projection the report draws
+            options = replace(scoring, tsne=scoring.tsne and layer == layer_list[-1])
+            per_layer[layer] = score_features(clean, cluttered, tasks=tasks, factors=factors, names=names,
+                                              options=options, groups=groups)
+        if key:
+            score_cache.store(cache_dir, key, per_layer)
     result = {"schema": RESULT_SCHEMA, **per_layer[layer_list[-1]]}
     if len(layer_list) > 1:
         result["layers"] = {layer: s["metrics"] for layer, s in per_layer.items()}

@@ -285,11 +285,11 @@ def check_spec(ctx, param, value):
     """
     if value is None:
         return value
-    from ..encoders.specs import _split_spec
+    from ..encoders.spec_forms import split_spec
 
     for spec in (value,) if isinstance(value, str) else value:
         try:
-            _split_spec(spec)
+            split_spec(spec)
         except InvarianceError as exc:
             raise click.BadParameter(printable(exc)) from None
     return value

@@ -14,13 +14,12 @@ from invariance.validation import check_int
 from .checkpoints import _load_checkpoint
 from .encoder import Encoder, resolve_device
 from .loaders import _MODULE_LOADERS
-
-_FORMS_HINT = (
-    "torchvision:NAME, torchvision:NAME@WEIGHTS, torchscript:FILE, python:MODULE:CALLABLE "
-    "or checkpoint:FILE"
-)
+from .spec_forms import FORMS, FORMS_HINT as _FORMS_HINT
+from .spec_forms import split_spec as _split_spec
 
 _LOADERS: dict[str, Callable[..., Encoder]] = {**_MODULE_LOADERS, "checkpoint": _load_checkpoint}
+if set(_LOADERS) != set(FORMS):  # the command line checks forms against FORMS without importing torch
+    raise RuntimeError("invariance.encoders.spec_forms.FORMS must name every loader")
 
 
 def load_encoder(
@@ -75,16 +74,6 @@ def load_encoder(
     enc.module = enc.module.to(dev).eval()
     enc.device = dev
     return enc
-
-
-def _split_spec(spec) -> tuple[str, str]:
-    """``(form, rest)`` of a spec string, the form being one :func:`load_encoder` knows."""
-    if not isinstance(spec, str) or ":" not in spec:
-        raise InvarianceError(f"encoder spec {spec!r} must look like {_FORMS_HINT}")
-    kind, rest = spec.split(":", 1)
-    if kind not in _LOADERS:
-        raise InvarianceError(f"encoder spec {spec!r}: unknown form {kind!r}; use {_FORMS_HINT}")
-    return kind, rest
 
 
 def _min_input_size(arch: str | None) -> int | None:
