@@ -25,6 +25,7 @@ TARGETS = {
     "stats_memory_gib": 4.0,  # 20,000 x 512-d statistics peak memory
     "align_step_ratio": 0.40,  # cached-trunk step of the last ResNet-18 block vs a whole-network step
     "scenes_pairs_per_s": 200.0,  # scene generation at 128 px on one core
+    "episode_over_bare": 1.15,  # extraction from an HDF5 episode file vs the bare forward pass
 }
 
 
@@ -353,7 +354,21 @@ def _report_rest(figures, ex, sample, spec, pairs, quick, echo):
     echo(_line("scene rendering, 128 px", sc["render_pairs_per_s"], "pairs/s", TARGETS["scenes_pairs_per_s"], "above"))
     echo(_line("scene rendering + PNG writing, 128 px", sc["render_and_write_pairs_per_s"], "pairs/s"))
 
+    from .encoders import load_encoder
+    from .sources.timing import time_episode_extraction
+
+    ep = figures["episode_source"] = time_episode_extraction(load_encoder(spec, device="cpu"),
+                                                             episodes=4 if quick else 8)
+    echo(_line(f"HDF5 episode extraction / bare pass ({ep['frames']} frames)", ep["ratio"], "x",
+               TARGETS["episode_over_bare"]))
+
     if pairs:
         est = figures["estimate"] = estimate_seconds(pairs, ex, figures["statistics"])
         echo(f"estimate for {pairs:,} pairs with {spec} at 224 px: extraction {est['extract_s'] / 60:.1f} min, "
              f"statistics {est['statistics_s'] / 60:.1f} min, total {est['total_s'] / 60:.1f} min")
+        from .scale_bench import run_scale_bench
+
+        # Engine pairs are few because each engine extracts them with the full encoder;
+        # the per-worker rate includes actor start-up, so the cluster estimate is pessimistic.
+        figures["scale"] = run_scale_bench(pairs=pairs, spec=spec, engine_pairs=100 if quick else 400,
+                                           stats_pairs=min(pairs, 100_000 if quick else 1_000_000), echo=echo)

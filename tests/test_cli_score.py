@@ -252,3 +252,19 @@ def test_output_tolerance_reports_output_drift_with_the_caution(tmp_path, scene_
     drift = json.loads(out.read_text())["output_drift"]
     assert drift["dimensions"] == 128 and drift["pairs"] == 12
     assert SAFETY_CAUTION.split(".")[0] in res.output
+
+
+def test_a_features_directory_scores_like_the_images_it_came_from(tmp_path, scene_set):
+    # `invariance extract` on one machine, `score --features-dir` on another: same statistics.
+    feats, a, b = tmp_path / "feats", tmp_path / "a.json", tmp_path / "b.json"
+    res = _run(["extract", str(scene_set), "--encoder", "python:invariance.zoo:workbench_cnn", "--image-size", "32",
+                "--out", str(feats), "--quiet"])
+    assert res.exit_code == 0, res.output
+    res = _run(["score", "--features-dir", str(feats), "--labels", str(scene_set / "labels.csv"),
+                "--permutations", "20", "--quiet", "--json", str(a)])
+    assert res.exit_code == 0, res.output
+    res = _run(["score", str(scene_set), *_IMAGES, "--no-cache", "--json", str(b)])
+    assert res.exit_code == 0, res.output
+    assert json.loads(a.read_text())["metrics"] == json.loads(b.read_text())["metrics"]
+    res = _run(["score", "--features-dir", str(feats), "--encoder", "torchvision:resnet18", "--quiet"])
+    assert res.exit_code == 1 and "not of encoder 'torchvision:resnet18'" in res.output

@@ -13,6 +13,7 @@ from .. import __version__
 from .align import align
 from .compare import compare
 from .explain import explain
+from .extract import extract
 from .other import bench, demo, layers, report, scenes
 from .score import score
 
@@ -29,6 +30,7 @@ def cli():
       invariance align demo_set --encoder SPEC --out aligned.pt
       invariance compare demo_set --encoder A --encoder checkpoint:aligned.pt --report cmp.html
       invariance explain demo_set --encoder SPEC --worst 4 --out maps   # where clutter bites
+      invariance extract big_set --encoder SPEC --out feats --engine ray  # features on a cluster
 
     A data set folder holds clean/ and cluttered/ with matching file names and an optional
     labels.csv (first column the file name; text columns are classes, numeric columns are
@@ -36,7 +38,7 @@ def cli():
     """
 
 
-for _command in (scenes, score, layers, compare, report, align, explain, demo, bench):
+for _command in (scenes, score, layers, extract, compare, report, align, explain, demo, bench):
     cli.add_command(_command)
 
 

@@ -36,7 +36,7 @@ EXIT_CODES_HELP = (
 
 # Library parameter -> command-line flag, where the flag is not the parameter's name with
 # dashes (the library names parameters, the command line names flags).
-_FLAGS = {"held_out_fraction": "--held-out", "spec": "--encoder", "cache_dir": "--cache-dir",
+_FLAGS = {"held_out_fraction": "--held-out", "spec": "--encoder", "cache_dir": "--cache-dir", "layers": "--layer",
           "trusted_code": "--trust-code"}
 
 

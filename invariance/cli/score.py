@@ -20,8 +20,12 @@ from ._shared import (EXIT_CODES_HELP, check_outputs, say, encoder_option, extra
 @click.option("--layer", "layers", multiple=True, help="Graph node to tap (repeat for several; see `invariance layers`).")
 @click.option("--features", nargs=2, type=click.Path(dir_okay=False, path_type=Path), default=None,
               metavar="CLEAN.npy CLUTTERED.npy", help="Score your own features (rows paired) instead of running an encoder.")
+@click.option("--features-dir", type=click.Path(file_okay=False, path_type=Path), default=None, metavar="DIR",
+              help="Score a features directory written by `invariance extract` (on this or another machine); "
+                   "with --encoder, refuse one from another encoder; --layer picks its layer.")
 @click.option("--labels", "labels_csv", type=click.Path(dir_okay=False, path_type=Path),
-              help="With --features: labels.csv whose rows follow the feature rows.")
+              help="With --features: labels.csv whose rows follow the feature rows; with --features-dir: "
+                   "labels.csv whose first column names the pairs.")
 @json_option
 @report_option
 @click.option("--drift-csv", type=click.Path(dir_okay=False, path_type=Path), help="Write per-pair drift (file, drift) here.")
@@ -36,7 +40,7 @@ from ._shared import (EXIT_CODES_HELP, check_outputs, say, encoder_option, extra
 @source_options
 @quiet_option
 @handle_errors
-def score(data, spec, weights, layers, features, labels_csv, json_path, report_path, drift_csv, name, output_tolerance,
+def score(data, spec, weights, layers, features, features_dir, labels_csv, json_path, report_path, drift_csv, name, output_tolerance,
           scoring, gates, extraction, sources, quiet):
     """Measure how differently an encoder sees the clean and cluttered views of the same scenes.
 
@@ -58,8 +62,19 @@ def score(data, spec, weights, layers, features, labels_csv, json_path, report_p
     site's safety rules and the applicable standards.
     """
     from .. import pipeline
-    from ..gates import evaluate_gates, raise_for_gates
 
+    if features_dir is not None:
+        if data or features is not None:
+            raise click.UsageError("--features-dir replaces DATA and --features; give one of them")
+        if len(layers) > 1:
+            raise click.UsageError("--features-dir scores one layer at a time; give at most one --layer")
+        check_outputs({"--json": json_path, "--report": report_path, "--drift-csv": drift_csv},
+                      files=[labels_csv, features_dir / "manifest.json"])
+        result = _score_features_dir(features_dir, spec, layers[0] if layers else None, labels_csv, scoring)
+        if name:
+            result["encoder"]["name"] = name
+        _finish(result, gates, json_path, report_path, drift_csv, scoring)
+        return
     if len(data) > 2:
         raise click.UsageError(f"give one data folder or two domains (DATA_A DATA_B); got {len(data)} arguments")
     if features is None and (not data or spec is None):
@@ -91,6 +106,13 @@ def score(data, spec, weights, layers, features, labels_csv, json_path, report_p
             raise click.UsageError(f"{folder} names one source; give two domains (DATA_A DATA_B) to score sources")
         result = pipeline.score_dataset(folder, spec, weights=weights, layers=layers, name=name, extraction=extraction,
                                         scoring=scoring, progress=not quiet, output_tolerance=tolerance)
+    _finish(result, gates, json_path, report_path, drift_csv, scoring)
+
+
+def _finish(result, gates, json_path, report_path, drift_csv, scoring):
+    """Gates, outputs, the terminal summary; exit 3 when a gate failed."""
+    from ..gates import evaluate_gates, raise_for_gates
+
     result["gates"] = evaluate_gates(result, gates)
     write_result_outputs(result, json_path=json_path, report_path=report_path, drift_csv=drift_csv, tsne=scoring.tsne)
     print_summary(result)
@@ -100,6 +122,22 @@ def score(data, spec, weights, layers, features, labels_csv, json_path, report_p
         for line in describe_output_drift(result["output_drift"]):
             say(line)
     raise_for_gates(result["gates"])
+
+
+def _score_features_dir(folder, spec, layer, labels_csv, scoring):
+    from .. import pipeline
+    from ..data import read_labels
+    from ..features_dir import FeaturesDirectory
+
+    features = FeaturesDirectory(folder, spec=spec, layer=layer)
+    clean, cluttered = features.arrays(layer)
+    tasks = factors = groups = None
+    if labels_csv is not None:
+        table = read_labels(labels_csv, features.names)
+        tasks, factors, groups = table.tasks or None, table.factors or None, table.groups
+    source = {"spec": f"features:{folder}", "name": Path(folder).name, "path": str(folder)}
+    return pipeline.score_feature_arrays(clean, cluttered, tasks=tasks, factors=factors, names=features.names,
+                                         scoring=scoring, source=source, groups=groups)
 
 
 def _source_files(data):
