@@ -98,7 +98,7 @@ def _read_json(path: Path, what: str) -> dict:
         if size > MAX_JSON_BYTES:
             raise ValueError(f"{size:,} bytes, above the {MAX_JSON_BYTES:,} read")
         data = json.loads(path.read_bytes().decode("utf-8"))
-    except (OSError, ValueError, UnicodeDecodeError) as exc:
+    except (OSError, ValueError, UnicodeDecodeError, RecursionError) as exc:  # RecursionError: deeply nested JSON
         raise InvarianceError(f"{path}: the {what} cannot be read ({str(exc).splitlines()[0] if str(exc) else type(exc).__name__}); "
                               "extract the features again into a new folder") from None
     if not isinstance(data, dict) or data.get("format") != FORMAT:

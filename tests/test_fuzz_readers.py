@@ -410,3 +410,107 @@ def test_the_fuzzing_bites(stored_checkpoint, monkeypatch):
     generated_only = given(data=st.data(), raw=st.just(b""), use_raw=st.just(False))(_checkpoint_property)
     with pytest.raises((AttributeError, TypeError, KeyError, RuntimeError)):
         _ONCE(generated_only)(stored_checkpoint)
+
+
+# --------------------------------------------------------------------------- episode sources and features directories
+
+_DTYPES = st.sampled_from(["uint8", "uint16", "float32", "float64", "int64", "bool", "S4"])
+_SHAPES = st.lists(st.integers(0, 6), min_size=0, max_size=5).map(tuple)
+
+
+def _hdf5_file(path, draw):
+    """An HDF5 file of generated groups, datasets of any dtype and shape, and links (h5py)."""
+    import h5py
+
+    with h5py.File(path, "w") as root:
+        for i in range(draw(st.integers(0, 3))):
+            group = root.require_group(f"data/demo_{i}/obs")
+            shape, dtype = draw(_SHAPES), draw(_DTYPES)
+            group.create_dataset("front_image", data=np.zeros(shape, dtype=dtype))
+            if draw(st.booleans()):
+                group["ee_pos"] = np.zeros((draw(st.integers(0, 4)), draw(st.integers(1, 3))))
+            if draw(st.booleans()):
+                group["loop"] = h5py.SoftLink(f"/data/demo_{i}/obs")  # a link to its own group
+            if draw(st.booleans()):
+                group["elsewhere"] = h5py.ExternalLink("/etc/hostname", "/x")  # never followed
+
+
+@FUZZ
+@given(data=st.data(), raw=st.binary(max_size=200), use_raw=st.booleans(),
+       pattern=st.sampled_from(["data/*/obs/front_image", "data/*/obs/loop/front_image", "data/*/obs/elsewhere",
+                                "*", "data/*/obs/*", "", "/", "data/**"]))
+def test_hdf5_sources(data, raw, use_raw, pattern):
+    from invariance.sources import SourceOptions, iter_frames, open_source
+
+    path = _scratch() / "demos.h5"
+    if use_raw:
+        path.write_bytes(raw)
+    else:
+        _hdf5_file(path, data.draw)
+    options = _only_clear_errors(lambda: SourceOptions(labels=(("ee_pos", "data/*/obs/ee_pos"),)))
+    source = _only_clear_errors(lambda: open_source(f"hdf5:{path}#frames={pattern}", options))
+    if source is not None:
+        frames = _only_clear_errors(lambda: list(iter_frames(source, options)))
+        for frame in frames or ():
+            assert frame.image.dtype == np.uint8 and frame.image.ndim == 3
+
+
+@FUZZ
+@given(data=st.data())
+def test_zarr_sources(data):
+    import zarr
+
+    from invariance.sources import SourceOptions, iter_frames, open_source
+
+    path = _scratch() / "buffer.zarr"
+    root = zarr.open_group(str(path), mode="w")
+    shape, dtype = data.draw(_SHAPES), data.draw(_DTYPES.filter(lambda d: d != "S4"))
+    root.create_array("data/img", shape=shape, dtype=dtype)
+    ends = data.draw(st.lists(st.integers(-3, 12), max_size=5))
+    root.create_array("meta/episode_ends", shape=(len(ends),), dtype="int64")[:] = np.array(ends, dtype=np.int64)
+    source = _only_clear_errors(lambda: open_source(f"zarr:{path}#frames=data/img", SourceOptions()))
+    if source is not None:
+        frames = _only_clear_errors(lambda: list(iter_frames(source, SourceOptions())))
+        for frame in frames or ():
+            assert frame.image.dtype == np.uint8
+
+
+@FUZZ
+@given(text=st.text(max_size=60) | st.sampled_from(["hdf5:", "zarr:x#", "video:#fps=-1", "hdf5:a.h5#frames=",
+                                                      "images:#k=v,k=w", "x" * 5000, "hdf5:a.h5#frames=a,frames=b"]))
+def test_source_specs(text):
+    from invariance.sources import parse_spec
+
+    spec = _only_clear_errors(lambda: parse_spec(text))
+    if spec is not None:
+        assert spec.kind in ("hdf5", "zarr", "video", "images")
+
+
+@FUZZ
+@given(value=_JSON, raw=_RAW_JSON, use_raw=st.booleans())
+def test_features_directory_manifests(stored_features_dir, value, raw, use_raw):
+    import shutil
+
+    from invariance.features_dir import load_features
+
+    folder = _scratch() / "feats"
+    shutil.copytree(stored_features_dir, folder)
+    (folder / "manifest.json").write_bytes(raw if use_raw else json.dumps(value).encode("utf-8"))
+    loaded = _only_clear_errors(lambda: load_features(folder))
+    if loaded is not None:
+        clean, cluttered, names = loaded
+        assert clean.shape == cluttered.shape and len(names) == clean.shape[0]
+
+
+@pytest.fixture(scope="module")
+def stored_features_dir():
+    from invariance.data import PairSet
+    from invariance.extract import extract_to_directory
+
+    root = _scratch()
+    for view in ("clean", "cluttered"):
+        (root / view).mkdir()
+        for name in _NAMES[:4]:
+            Image.new("RGB", (16, 16), (9, 99, 199)).save(root / view / name)
+    extract_to_directory(root, ENCODER, root / "feats", image_size=16, progress=False)
+    return root / "feats"

@@ -42,6 +42,13 @@ class SourceSpec:
 
 
 def _infer_kind(path: Path) -> str:
+    try:
+        return _kind_from_disk(path)
+    except OSError:  # a name too long, a folder we may not list: the reader reports it with the fix
+        return "images"
+
+
+def _kind_from_disk(path: Path) -> str:
     suffix = path.suffix.lower()
     if suffix in hdf5.EXTENSIONS:
         return "hdf5"
