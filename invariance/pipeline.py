@@ -93,7 +93,7 @@ def _load(spec: str, weights, extraction: ExtractionOptions, image_size=None):
 
 def score_dataset(data, spec: str, *, weights=None, layers: Sequence[str] | None = None, name: str | None = None,
                   extraction: ExtractionOptions | None = None, scoring: ScoringOptions | None = None,
-                  progress=True, pairs=None, encoder=None, output_tolerance=None) -> dict:
+                  progress=True, pairs=None, encoder=None, output_tolerance=None, explain_worst: int = 0) -> dict:
     """Extract features of every pair with one encoder and score them.
 
     Parameters
@@ -119,6 +119,9 @@ def score_dataset(data, spec: str, *, weights=None, layers: Sequence[str] | None
         The spec is a whole policy: also report its output drift per output dimension in
         the output's own units (``output_drift``), with the share of pairs whose change
         exceeds this tolerance (see :func:`invariance.metrics.output_drift.output_drift`).
+    explain_worst : int, default=0
+        Also store occlusion drift maps (per-patch drops, 16 px patches) of the pairs that
+        drift most, under ``drift_maps``; the report overlays them on the thumbnails.
 
     Returns
     -------
@@ -144,7 +147,7 @@ def score_dataset(data, spec: str, *, weights=None, layers: Sequence[str] | None
     layer_list = list(layers) if layers else [DEFAULT_LAYER]
     start = time.perf_counter()
     features, description, encoder = _features_of(spec, weights, pairs, layer_list, extraction, progress, encoder,
-                                                  need_encoder=output_tolerance is not None)
+                                                  need_encoder=output_tolerance is not None or explain_worst > 0)
     timings = {"extract": time.perf_counter() - start}
     start = time.perf_counter()
     result = _score_layers(features, layer_list, pairs, scoring, cache_dir=extraction.cache_dir)
@@ -154,10 +157,31 @@ def score_dataset(data, spec: str, *, weights=None, layers: Sequence[str] | None
 
         result["output_drift"] = policy_output_drift(pairs, encoder, output_tolerance,
                                                      batch_size=extraction.batch_size, progress=progress)
+    if explain_worst:
+        result["drift_maps"] = _drift_maps(pairs, encoder, explain_worst, layer_list[-1], extraction, progress)
     result["encoder"] = {**description, "name": name or spec, "layer": layer_list[-1]}
     result["dataset"] = _dataset_info(pairs)
     result["environment"] = environment_info(seed=scoring.seed, device=description.get("device"), timings=timings)
     return add_caution(result)
+
+
+def _drift_maps(pairs, encoder, worst: int, layer: str, extraction, progress) -> dict:
+    """Occlusion maps of the ``worst`` pairs, kept as per-patch drops (small enough for the JSON)."""
+    from PIL import Image
+
+    from .explain import explain_pairs
+
+    explained = explain_pairs(pairs, encoder, worst=min(worst, len(pairs)), method="occlusion",
+                              layer=None if layer == DEFAULT_LAYER else layer, extraction=extraction,
+                              progress=progress)
+    out = []
+    for entry in explained["pairs"]:
+        with Image.open(pairs.cluttered[entry["index"]]) as image:
+            width, height = image.size
+        out.append({"name": entry["name"], "relative_drift": entry.get("relative_drift"),
+                    "drift": entry.get("drift"), "height": height, "width": width,
+                    "drops": [[float(v) for v in row] for row in entry["drops"]]})
+    return {"method": "occlusion", "patch": explained.get("patch"), "layer": layer, "pairs": out}
 
 
 def _features_of(spec, weights, pairs, layer_list, extraction, progress, encoder, *, need_encoder=False):

@@ -268,3 +268,31 @@ def test_a_features_directory_scores_like_the_images_it_came_from(tmp_path, scen
     assert json.loads(a.read_text())["metrics"] == json.loads(b.read_text())["metrics"]
     res = _run(["score", "--features-dir", str(feats), "--encoder", "torchvision:resnet18", "--quiet"])
     assert res.exit_code == 1 and "not of encoder 'torchvision:resnet18'" in res.output
+
+
+def test_explain_worst_stores_drift_maps_and_the_report_overlays_them(tmp_path, scene_set):
+    from invariance.data import discover_pairs
+    from invariance.encoders import load_encoder
+    from invariance.explain import occlusion_map
+
+    out, report = tmp_path / "r.json", tmp_path / "r.html"
+    res = _run(["score", str(scene_set), *_IMAGES, "--no-cache", "--explain-worst", "2", "--json", str(out),
+                "--report", str(report)])
+    assert res.exit_code == 0, res.output
+    result = json.loads(out.read_text())
+    maps = result["drift_maps"]
+    assert maps["method"] == "occlusion" and len(maps["pairs"]) == 2
+    worst = sorted(result["pairs"], key=lambda p: -p["drift"])[:2]
+    assert [p["name"] for p in maps["pairs"]] == [p["name"] for p in worst]  # the pairs that drift most
+    # the stored drops are those of the occlusion map computed directly on that pair
+    pairs = discover_pairs(scene_set)
+    index = list(pairs.names).index(maps["pairs"][0]["name"])
+    encoder = load_encoder("python:invariance.zoo:workbench_cnn", device="cpu", image_size=32)
+    from PIL import Image
+
+    views = [Image.open(path).convert("RGB") for path in (pairs.clean[index], pairs.cluttered[index])]
+    direct = occlusion_map(encoder, *views, patch=maps["patch"])
+    np.testing.assert_allclose(maps["pairs"][0]["drops"], direct["drops"], rtol=1e-4, atol=1e-6)
+    assert report.read_text().count('alt="drift map of') == 2
+    res = _run(["score", "--features", str(tmp_path / "x.npy"), str(tmp_path / "y.npy"), "--explain-worst", "2"])
+    assert res.exit_code == 2 and "--explain-worst needs paired images" in res.output

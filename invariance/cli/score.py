@@ -30,6 +30,9 @@ from ._shared import (EXIT_CODES_HELP, check_outputs, say, encoder_option, extra
 @report_option
 @click.option("--drift-csv", type=click.Path(dir_okay=False, path_type=Path), help="Write per-pair drift (file, drift) here.")
 @click.option("--name", default=None, help="Display name in tables and the report [default: the spec].")
+@click.option("--explain-worst", type=click.IntRange(0, 50), default=0, show_default=True, metavar="K",
+              help="Also compute occlusion drift maps of the K pairs that drift most; the report overlays "
+                   "them on the thumbnails (see `invariance explain` for more options).")
 @click.option("--output-tolerance", default=None, metavar="T1,T2,...",
               help="The encoder is a whole policy (one output vector per image): also report how far its output "
                    "moves per dimension, in the output's units, and the share of pairs moving more than these "
@@ -40,7 +43,8 @@ from ._shared import (EXIT_CODES_HELP, check_outputs, say, encoder_option, extra
 @source_options
 @quiet_option
 @handle_errors
-def score(data, spec, weights, layers, features, features_dir, labels_csv, json_path, report_path, drift_csv, name, output_tolerance,
+def score(data, spec, weights, layers, features, features_dir, labels_csv, json_path, report_path, drift_csv, name,
+          explain_worst, output_tolerance,
           scoring, gates, extraction, sources, quiet):
     """Measure how differently an encoder sees the clean and cluttered views of the same scenes.
 
@@ -89,6 +93,8 @@ def score(data, spec, weights, layers, features, features_dir, labels_csv, json_
         if features is not None or len(data) == 2 or sources.unpaired:
             raise click.UsageError("--output-tolerance needs paired images and a policy (DATA and --encoder)")
         tolerance = parse_tolerance(output_tolerance)
+    if explain_worst and (features is not None or features_dir is not None or len(data) == 2 or sources.unpaired):
+        raise click.UsageError("--explain-worst needs paired images and an encoder (DATA and --encoder)")
     check_outputs({"--json": json_path, "--report": report_path, "--drift-csv": drift_csv}, data=folder,
                   specs=[spec or ""], files=[weights, labels_csv, *(features or ()), *_source_files(data)])
     if features is not None:
@@ -105,7 +111,8 @@ def score(data, spec, weights, layers, features, features_dir, labels_csv, json_
         if str(folder).partition(":")[0] in KINDS or "#" in str(folder):
             raise click.UsageError(f"{folder} names one source; give two domains (DATA_A DATA_B) to score sources")
         result = pipeline.score_dataset(folder, spec, weights=weights, layers=layers, name=name, extraction=extraction,
-                                        scoring=scoring, progress=not quiet, output_tolerance=tolerance)
+                                        scoring=scoring, progress=not quiet, output_tolerance=tolerance,
+                                        explain_worst=explain_worst)
     _finish(result, gates, json_path, report_path, drift_csv, scoring)
 
 

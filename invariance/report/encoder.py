@@ -194,8 +194,14 @@ def _worst_pairs(result: dict, thumbnails: Thumbnails) -> dict | None:
     dataset = result.get("dataset") or {}
     pairs = [pair_figure(thumbnails, dataset, name, f"drift {readings.format_number(drift, 2)}")
              for name, drift in worst]
+    maps = result.get("drift_maps") if isinstance(result.get("drift_maps"), dict) else {}
+    by_name = {m.get("name"): m for m in maps.get("pairs") or [] if isinstance(m, dict)}
+    for figure in pairs:  # the occlusion map over the cluttered view, when score stored one
+        if figure["name"] in by_name:
+            figure["map"] = thumbnails.overlay_uri(dataset, figure["name"], by_name[figure["name"]], maps.get("patch"))
     not_found = sum(not p["found"] for p in pairs)
-    return {"pairs": pairs, "not_found": not_found, "root": str(thumbnails.root(dataset))}
+    return {"pairs": pairs, "not_found": not_found, "root": str(thumbnails.root(dataset)),
+            "maps": any(p.get("map") for p in pairs)}
 
 
 def _layers(result: dict) -> dict | None:

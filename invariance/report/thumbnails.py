@@ -64,6 +64,35 @@ class Thumbnails:
         return self._cache[candidate]
 
 
+    def overlay_uri(self, dataset: dict, name: str, entry: dict, patch) -> str | None:
+        """The cluttered view of ``name`` with its occlusion drift map over it, as a thumbnail.
+
+        ``entry`` is one pair of a result's ``drift_maps`` (per-patch ``drops``, ``height``,
+        ``width``); ``None`` when the image or the stored map cannot be used.
+        """
+        from invariance.errors import InvarianceError
+        from invariance.explain import overlay_rgb, spread_drops
+
+        root = self.root(dataset)
+        if root is None or not isinstance(entry, dict):
+            return None
+        folder = (root / "cluttered").resolve()
+        candidate = (folder / str(name)).resolve()
+        if not candidate.is_relative_to(folder) or not candidate.is_file():
+            return None
+        try:
+            with Image.open(candidate) as image:
+                image = image.convert("RGB")
+                drift_map = spread_drops(entry.get("drops"), patch, image.height, image.width)
+                blended = Image.fromarray(overlay_rgb(image, drift_map))
+        except (OSError, ValueError, TypeError, InvarianceError, Image.DecompressionBombError):
+            return None
+        blended.thumbnail((THUMBNAIL_PX, THUMBNAIL_PX))
+        buffer = io.BytesIO()
+        blended.save(buffer, format="PNG", optimize=True)
+        return plots.to_data_uri(buffer.getvalue())
+
+
 def _thumbnail_uri(path: Path) -> str | None:
     try:
         with Image.open(path) as image:
