@@ -112,6 +112,10 @@ DEFAULT_LEARNING_RATE = 1e-3
 # A clean probe may fall 5% (relative) before training stops (common practice).
 DEFAULT_GUARD_MARGIN = 0.05
 DEFAULT_HELD_OUT_FRACTION = 0.3
+# The alignment objectives (docs/alignment.md, "Objectives side by side"): gradient reversal
+# alone (DANN, Ganin et al., JMLR 2016), the paired and mean-matching terms alone, or both.
+OBJECTIVES = ("combined", "dann", "paired")
+DEFAULT_OBJECTIVE = "combined"
 
 
 @dataclass(frozen=True)
@@ -123,9 +127,11 @@ class AlignmentOptions:
     steps : int, default=800
         Training steps; the schedules follow them, so a run is reproducible on any machine.
     minutes : float, optional
-        Wall-clock limit; it only stops training early.
+        Wall-clock limit of the whole alignment (caching, training, held-out scoring):
+        training stops early to fit it, and the result says so (``cut_short``).
     train_from : str, optional
-        First top-level stage to train; default: the last stage with parameters.
+        First stage to train: a top-level child or a dotted submodule path; default: the
+        shortest run of last stages holding half of the parameters.
     held_out_fraction : float, default=0.3
         Share of pairs never trained on; before and after are measured there.
     anchor_weight, paired_weight, mean_weight, task_weight : float
@@ -136,6 +142,10 @@ class AlignmentOptions:
         Relative fall of a validation clean probe that stops training.
     batch_size : int, default=32
         Pairs per training step (both views).
+    objective : str, default='combined'
+        ``"combined"`` (gradient reversal plus the paired and mean-matching terms),
+        ``"dann"`` (gradient reversal only) or ``"paired"`` (the paired and mean-matching
+        terms only); the anchor and the task heads are in all three.
     """
 
     steps: int = DEFAULT_STEPS
@@ -149,9 +159,11 @@ class AlignmentOptions:
     learning_rate: float = DEFAULT_LEARNING_RATE
     guard_margin: float = DEFAULT_GUARD_MARGIN
     batch_size: int = 32
+    objective: str = DEFAULT_OBJECTIVE
 
     def __post_init__(self):
         checked = {
+            "objective": check_choice("objective", self.objective, OBJECTIVES),
             "steps": check_int("steps", self.steps, low=1, high=1_000_000),
             "minutes": check_float("minutes", self.minutes, low=0.01, high=24 * 60, allow_none=True),
             "held_out_fraction": check_float("held_out_fraction", self.held_out_fraction, low=0.05, high=0.8),

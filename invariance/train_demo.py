@@ -192,3 +192,58 @@ def main(argv=None) -> int:
 
 if __name__ == "__main__":
     sys.exit(main())
+
+
+def train_clean(net: nn.Module, images: torch.Tensor, classes: torch.Tensor, xy: torch.Tensor | None = None, *,
+                steps: int, seed: int, batch_size: int = BATCH_SIZE, learning_rate: float = LEARNING_RATE) -> nn.Module:
+    """Train any feature extractor briefly on clean images with a linear head; returns it in eval mode.
+
+    The alignment panel's encoders (``tests/alignment_panel.py``) are trained this way:
+    cross-entropy on ``classes`` plus, when given, squared error on standardised ``xy``,
+    AdamW with a one-cycle schedule (common practice for short runs), seeded.
+
+    Parameters
+    ----------
+    net : nn.Module
+        Maps a normalised image batch to (N, D) features.
+    images : torch.Tensor of shape (n, 3, H, W)
+        Clean images, normalised as the encoder's preprocessing does.
+    classes : torch.Tensor of shape (n,)
+        Class index per image.
+    xy : torch.Tensor of shape (n, 2), optional
+        Standardised regression targets.
+    steps, seed, batch_size, learning_rate
+        Training steps, seed, images per step and peak learning rate.
+
+    Returns
+    -------
+    nn.Module
+        ``net``, trained, in eval mode.
+    """
+    generator = torch.Generator().manual_seed(seed)
+    with torch.no_grad():
+        dim = net.eval()(images[:2]).shape[1]
+    part = seeded_head(dim, int(classes.max()) + 1, generator)
+    head_xy = seeded_head(dim, 2, generator) if xy is not None else None
+    params = [*net.parameters(), *part.parameters(), *(head_xy.parameters() if head_xy is not None else [])]
+    optimizer = torch.optim.AdamW(params, lr=learning_rate, weight_decay=WEIGHT_DECAY)
+    schedule = torch.optim.lr_scheduler.OneCycleLR(optimizer, max_lr=learning_rate, total_steps=steps)
+    net.train()
+    for _ in range(steps):
+        idx = torch.randint(len(images), (batch_size,), generator=generator)
+        f = net(images[idx])
+        loss = F.cross_entropy(part(f), classes[idx])
+        if head_xy is not None:
+            loss = loss + F.mse_loss(head_xy(f), xy[idx])
+        optimizer.zero_grad(set_to_none=True)
+        loss.backward()
+        optimizer.step()
+        schedule.step()
+    return net.eval()
+
+
+def seeded_head(dim: int, out: int, generator: torch.Generator) -> nn.Linear:
+    """A linear head drawn from ``generator`` (the caller's global random state is not used)."""
+    from .align.reversal import seeded_linear
+
+    return seeded_linear(dim, out, generator)

@@ -137,3 +137,67 @@ def clean_only_encoder() -> nn.Sequential:
 def clutter_augmented_encoder() -> nn.Sequential:
     """The workbench CNN trained with cluttered views as augmentation."""
     return _load_shipped("clutter_augmented")
+
+
+# ---------------------------------------------------------------- alignment panel architectures
+# Architectures the alignment is developed and tested against besides the workbench CNN
+# (docs/alignment.md, "Panel"). Untrained here; the tests train them on clean scenes.
+
+
+def sequential_cnn(image_size: int = IMAGE_SIZE) -> nn.Sequential:
+    """A plain ``nn.Sequential`` CNN with integer-named children, no batch normalisation.
+
+    Three conv + ReLU + max-pool stages (16, 32, 64 channels) and a global average pool:
+    the kind of small network a user writes by hand.
+
+    Parameters
+    ----------
+    image_size : int, default=64
+        Input side in pixels (recorded in ``invariance_preprocess``).
+
+    Returns
+    -------
+    torch.nn.Sequential
+        Output ``(N, 64)``.
+    """
+    net = nn.Sequential(
+        nn.Conv2d(3, 16, 3, padding=1), nn.ReLU(), nn.MaxPool2d(2),
+        nn.Conv2d(16, 32, 3, padding=1), nn.ReLU(), nn.MaxPool2d(2),
+        nn.Conv2d(32, 64, 3, padding=1), nn.ReLU(), nn.AdaptiveAvgPool2d(1), nn.Flatten(1),
+    )
+    net.invariance_preprocess = {**PREPROCESS, "image_size": image_size}
+    return net
+
+
+def digits_cnn() -> nn.Sequential:
+    """:func:`sequential_cnn` for 32 px digit images."""
+    return sequential_cnn(32)
+
+
+def resnet18_64() -> nn.Module:
+    """torchvision's ResNet-18 (random init, no head) for 64 px images; output ``(N, 512)``."""
+    import torchvision
+
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(0)  # the caller's global random state stays as it was
+        net = torchvision.models.resnet18(weights=None)
+    net.fc = nn.Identity()
+    net.invariance_preprocess = dict(PREPROCESS)
+    return net
+
+
+def small_vit() -> nn.Module:
+    """A small torchvision VisionTransformer (64 px, 8 px patches, 4 layers, width 64); output ``(N, 64)``.
+
+    Its forward prepends a class token and adds position embeddings between its children,
+    so it is not a plain chain of them (alignment splits it with torch.fx).
+    """
+    from torchvision.models import VisionTransformer
+
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(0)
+        net = VisionTransformer(image_size=IMAGE_SIZE, patch_size=8, num_layers=4, num_heads=4, hidden_dim=64,
+                                mlp_dim=128, num_classes=1)
+    net.heads = nn.Identity()
+    net.invariance_preprocess = dict(PREPROCESS)
+    return net

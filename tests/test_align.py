@@ -227,15 +227,77 @@ class _Residual(nn.Module):
         return torch.flatten(self.pool(h + self.body(h)), 1)
 
 
-def test_split_module_refuses_an_encoder_whose_forward_is_not_its_children():
-    with pytest.raises(InvarianceError, match="cannot be split there.*stem, body, pool"):
-        split_module(_Residual().eval(), "body", torch.randn(2, 3, 16, 16))
+def test_split_module_splits_a_residual_encoder_at_a_graph_node():
+    # The children in order are not the forward (a skip around ``body``); torch.fx records
+    # the forward (Reed et al., MLSys 2022) and the cut before ``body`` carries all the rest
+    # needs. Reference: the module's own output.
+    net = _Residual().eval()
+    x = torch.randn(2, 3, 16, 16)
+    trunk, tail, node = split_module(net, "body", x)
+    assert node == "body"
+    with torch.no_grad():
+        assert torch.allclose(tail(trunk(x)), net(x), atol=1e-6)
+    assert {id(p) for p in tail.parameters()} == {id(p) for p in net.body.parameters()}
+
+
+class _Branching(nn.Module):
+    """Python control flow on a tensor value: torch.fx cannot trace it."""
+
+    def __init__(self):
+        super().__init__()
+        self.stem = nn.Conv2d(3, 4, 3, padding=1)
+        self.body = nn.Conv2d(4, 4, 3, padding=1)
+
+    def forward(self, x):
+        h = self.stem(x)
+        if h.mean() > 0:
+            h = h + self.body(h)
+        return h.mean(dim=(2, 3))
+
+
+def test_split_module_refuses_what_cannot_be_traced_and_says_what_to_pass():
+    with pytest.raises(InvarianceError, match="torch.fx cannot trace it.*nn.Sequential"):
+        split_module(_Branching().eval(), "body", torch.randn(2, 3, 16, 16))
+
+
+def test_split_module_splits_a_vit_at_an_encoder_layer():
+    from invariance.zoo import small_vit
+
+    net = small_vit().eval()
+    x = torch.randn(2, 3, 64, 64)
+    trunk, tail, node = split_module(net, "encoder.layers.encoder_layer_3", x)
+    assert node == "encoder.layers.encoder_layer_3"
+    with torch.no_grad():
+        assert torch.allclose(tail(trunk(x)), net(x), atol=1e-5)
+    trained = {id(p) for p in tail.parameters()}
+    assert trained == {id(p) for p in [*net.encoder.layers.encoder_layer_3.parameters(), *net.encoder.ln.parameters()]}
+    # The default: the last cut whose tail holds at least half of the parameters.
+    _, tail, node = split_module(net, None, x)
+    share = sum(p.numel() for p in tail.parameters()) / sum(p.numel() for p in net.parameters())
+    assert node.startswith("encoder.layers.") and 0.5 <= share < 0.75
+
+
+@pytest.mark.parametrize("builder, expected", [("workbench_cnn", "block3"), ("sequential_cnn", "6"),
+                                               ("resnet18_64", "layer4")])
+def test_default_stage_is_the_shortest_tail_holding_half_the_parameters(builder, expected):
+    from invariance import zoo
+
+    net = getattr(zoo, builder)().eval()
+    _, tail, node = split_module(net, None, torch.randn(2, 3, 64, 64))
+    assert node == expected
+    total = sum(p.numel() for p in net.parameters())
+    held = sum(p.numel() for p in tail.parameters())
+    names = [n for n, _ in net.named_children()]
+    later = names[names.index(expected) + 1:]
+    assert held >= 0.5 * total
+    # one stage less would hold less than half
+    assert held - sum(p.numel() for p in getattr(net, expected).parameters()) < 0.5 * total or not later
 
 
 def test_split_module_refuses_unknown_stage_and_stage_without_parameters():
     net = _zoo_like()
     x = torch.randn(2, 3, 64, 64)
-    with pytest.raises(InvarianceError, match="not a top-level stage.*stem, block1, block2, block3, pool, flatten"):
+    with pytest.raises(InvarianceError, match="not a stage of this encoder.*stem, block1, block2, block3, pool, flatten"):
         split_module(net, "layer4", x)
     with pytest.raises(InvarianceError, match="no trainable parameters"):
         split_module(net, "pool", x)
@@ -273,43 +335,40 @@ def _identity_run(clean, cluttered):
     return _Run(nn.Identity(), clean, cluttered, train_pos, np.arange(n - 2, n), [], head_input, 0)
 
 
-def test_paired_loss_divides_each_feature_by_its_clean_variance():
-    # Reference: the mean over pairs and features of (cluttered - clean)^2 / var_j, var_j the
-    # unbiased variance of feature j over the training pairs' original clean features
-    # (per-feature standardisation, common practice), floored at PAIRED_VARIANCE_FLOOR of
-    # the mean variance; computed here with numpy. The last feature is nearly constant on
-    # clean scenes, so the floor decides its divisor.
+def test_paired_term_is_the_relative_cosine_drift_of_the_batch():
+    # Reference: scipy's cosine distance. The term is the mean over pairs of the cosine
+    # distance between a scene's two views, divided by the mean cosine distance between
+    # different clean scenes (scipy.spatial.distance.pdist, metric "cosine"): the
+    # project's relative drift with the mean in place of the median (common practice).
+    from scipy.spatial.distance import cosine, pdist
+
     rng = np.random.default_rng(0)
-    clean = rng.normal(size=(12, 5)) * np.array([0.5, 1.0, 3.0, 2.0, 1e-4])
+    clean = rng.normal(size=(12, 5)) * np.array([0.5, 1.0, 3.0, 2.0, 1e-4]) + 1.0
     cluttered = clean + rng.normal(size=(12, 5))
     run = _identity_run(torch.tensor(clean, dtype=torch.float32), torch.tensor(cluttered, dtype=torch.float32))
     batch = np.array([0, 3, 4, 7])
-    var = clean[:10].var(axis=0, ddof=1)
-    floor = align.PAIRED_VARIANCE_FLOOR * var.mean()
-    assert var[-1] < floor < var[:-1].min()  # the case covers both branches
-    var = np.maximum(var, floor)
-    expected = ((cluttered[batch] - clean[batch]) ** 2 / var).mean()
+    expected = np.mean([cosine(clean[i], cluttered[i]) for i in batch]) / pdist(clean[batch], "cosine").mean()
     weights = {"anchor": 1.0, "task": 1.0, "paired": 1.0, "mean": 1.0}
     got = float(run.losses(batch, 0.0, weights)["paired"])
-    assert got == pytest.approx(expected, rel=1e-5)
+    assert got == pytest.approx(expected, rel=1e-4)
 
 
-def test_paired_loss_does_not_depend_on_a_feature_scale():
-    # Rescaling one feature (clean and cluttered alike) leaves a standardised loss unchanged,
-    # whereas a loss divided by the mean variance would change (the floor stays below every
-    # feature's variance here).
+def test_paired_term_is_scale_free_and_penalises_collapse():
+    # Scaling every feature (clean and cluttered alike) leaves a cosine ratio unchanged,
+    # and shrinking the clean scenes toward one point (a collapsed encoder) raises it:
+    # the trivial answer "every view the same" is not a minimum (common practice).
+    from invariance.align.losses import paired_drift_loss
+
     rng = np.random.default_rng(1)
-    clean = rng.normal(size=(12, 4))
-    cluttered = clean + rng.normal(size=(12, 4))
-    scale = np.array([1.0, 1.0, 1.0, 5.0])
-    weights = {"anchor": 1.0, "task": 1.0, "paired": 1.0, "mean": 1.0}
-    batch = np.arange(8)
-    losses = [
-        float(_identity_run(torch.tensor(c * k, dtype=torch.float32), torch.tensor(x * k, dtype=torch.float32))
-              .losses(batch, 0.0, weights)["paired"])
-        for c, x, k in ((clean, cluttered, 1.0), (clean, cluttered, scale))
-    ]
-    assert losses[1] == pytest.approx(losses[0], rel=1e-4)
+    clean = torch.tensor(rng.normal(size=(16, 6)) + 2.0, dtype=torch.float32)
+    cluttered = clean + 0.3 * torch.tensor(rng.normal(size=(16, 6)), dtype=torch.float32)
+    base = float(paired_drift_loss(clean, cluttered))
+    assert float(paired_drift_loss(1e3 * clean, 1e3 * cluttered)) == pytest.approx(base, rel=1e-4)
+    centre = clean.mean(0)
+    collapsed_clean = centre + 0.1 * (clean - centre)
+    collapsed_cluttered = centre + 0.1 * (cluttered - centre)
+    assert float(paired_drift_loss(collapsed_clean, collapsed_cluttered)) > 0.5 * base  # not driven to 0
+    assert float(paired_drift_loss(clean, clean)) == pytest.approx(0.0, abs=1e-5)  # float32 cosines
 
 
 def test_whitening_inverts_the_ledoit_wolf_covariance():
@@ -338,7 +397,9 @@ def test_mean_matching_loss_is_the_squared_mahalanobis_distance_of_the_means():
     run = _identity_run(torch.tensor(clean, dtype=torch.float32), torch.tensor(cluttered, dtype=torch.float32))
     batch = np.array([1, 4, 5, 9, 17, 22, 30])
     vi = LedoitWolf().fit(clean[run.train_pos]).precision_
-    expected = mahalanobis(cluttered[batch].mean(0), clean[batch].mean(0), vi) ** 2 / clean.shape[1]
+    train = run.train_pos
+    norm = mahalanobis(cluttered[train].mean(0), clean[train].mean(0), vi) ** 2 / clean.shape[1]
+    expected = mahalanobis(cluttered[batch].mean(0), clean[batch].mean(0), vi) ** 2 / clean.shape[1] / norm
     got = float(run.losses(batch, 0.0, {"anchor": 1.0, "task": 1.0, "paired": 1.0, "mean": 1.0})["mean"])
     assert got == pytest.approx(expected, rel=1e-3)
     # Identical views have identical means: no loss.
@@ -405,7 +466,10 @@ def demo_encoder():
 
 
 DEMO_SPEC = "python:invariance.zoo:clean_only_encoder"
-RUN = AlignmentOptions(steps=40, batch_size=16)
+# A 10% guard margin: on 36 held-out pairs the cross-fitted clean y probe of this 40-step
+# run moves by about 6% (0.979 -> 0.917 measured), beyond the default 5%, and the
+# plumbing tests below need a run whose checkpoint is written.
+RUN = AlignmentOptions(steps=40, batch_size=16, guard_margin=0.1)
 
 
 @pytest.fixture(scope="module")
@@ -448,6 +512,7 @@ def test_checkpoint_reloads_as_the_trained_encoder(trained_set, demo_encoder, tw
     from invariance.encoders import load_encoder
 
     out, result = two_runs["folder"] / "a.pt", two_runs["first"]
+    assert result["improved"] and result["checkpoint"] == str(out), result["outcome"]
     meta = torch.load(out, weights_only=True)["metadata"]
     assert meta["source_spec"] == DEMO_SPEC
     assert meta["settings"]["train_from"] == "block3" and meta["data_content_hash"] == trained_set.content_hash()
@@ -467,14 +532,16 @@ def test_checkpoint_reloads_as_the_trained_encoder(trained_set, demo_encoder, tw
 RESULT_KEYS = {"before", "after", "held_out_pairs", "align_pairs", "validation_pairs", "held_out_indices",
                "checkpoint", "train_from", "stopped_because", "steps_run", "best_step", "seconds", "settings",
                "curves"}
+# Added by the honest outcome and the time budget; the keys above stay as they were.
+NEW_RESULT_KEYS = {"improved", "outcome", "cut_short", "estimated_seconds", "task_check"}
 # The result JSON's alignment.settings keys, as written before options became objects.
 SETTINGS_KEYS = {"train_from", "steps", "minutes", "batch_size", "learning_rate", "guard_margin", "anchor_weight",
-                 "task_weight", "paired_weight", "mean_weight", "held_out_fraction", "seed", "tasks"}
+                 "task_weight", "paired_weight", "mean_weight", "held_out_fraction", "seed", "tasks", "objective"}
 
 
 def test_result_and_settings_keep_their_json_keys(two_runs):
     result = two_runs["first"]
-    assert set(result) == RESULT_KEYS
+    assert set(result) == RESULT_KEYS | NEW_RESULT_KEYS
     settings = result["settings"]
     assert set(settings) == SETTINGS_KEYS
     assert (settings["steps"], settings["batch_size"], settings["seed"]) == (RUN.steps, RUN.batch_size, 0)
@@ -490,6 +557,7 @@ def test_the_callers_global_random_state_is_untouched(two_runs):
 
 def test_progress_lines_show_every_logged_loss(two_runs):
     lines, curves = two_runs["lines"], two_runs["first"]["curves"]
+    lines = [line for line in lines if line.startswith("align step ")]
     assert len(lines) == len(curves["step"])  # one line per validation
     for row, (line, step) in enumerate(zip(lines, curves["step"])):
         assert line.startswith(f"align step {step}/{RUN.steps}:")
@@ -666,10 +734,9 @@ def test_acceptance_on_workbench_scenes(tmp_path):
     pairs = discover_pairs(tmp_path / "set")
     encoder = load_encoder("python:invariance.zoo:clean_only_encoder", device="cpu")
     start = time.perf_counter()
-    # The default settings (800 steps: 13 s of training on an idle 2-core machine, about 2.6
-    # minutes on a busy one, measured); the 3-minute limit caps a busier machine.
-    result = align_encoder(pairs, encoder, out=tmp_path / "aligned.pt",
-                           options=AlignmentOptions(train_from="block3", minutes=3.0),
+    # The default settings, run by steps (never by minutes, so the figures do not depend
+    # on the machine's load).
+    result = align_encoder(pairs, encoder, out=tmp_path / "aligned.pt", options=AlignmentOptions(train_from="block3"),
                            scoring=ScoringOptions(permutations=200), progress=False)
     minutes = (time.perf_counter() - start) / 60
     before, after = _figures(result["before"]), _figures(result["after"])
@@ -680,7 +747,8 @@ def test_acceptance_on_workbench_scenes(tmp_path):
         print(f"  {key:28s} before {before[key]:7.3f}  after {after[key]:7.3f}")
     print(SAFETY_CAUTION)
 
-    assert result["seconds"] <= 3.0 * 60 + 30  # the minutes limit holds (one validation may overrun)
+    assert result["improved"] and (tmp_path / "aligned.pt").is_file(), result["outcome"]
+    assert result["steps_run"] == AlignmentOptions().steps and not result["cut_short"]
     # Probes whose clean score starts above zero carry information (R^2 <= 0 predicts
     # nothing, e.g. the angle, which the demo encoders were not trained on).
     informative = [k[len("probe."):-len(".clean")] for k in before if k.endswith(".clean") and before[k] > 0]
@@ -689,8 +757,135 @@ def test_acceptance_on_workbench_scenes(tmp_path):
         assert after[f"probe.{task}.clean"] >= 0.95 * before[f"probe.{task}.clean"], task
         assert after[f"probe.{task}.cluttered"] >= before[f"probe.{task}.cluttered"], task
     # The alignment's targets: at least a 30% drift drop and a 0.15 (absolute) drop of the
-    # held-out domain-classifier accuracy. Measured with the defaults: 0.989 -> 0.683, drift
-    # 1.14 -> 0.56; without the mean-matching term the accuracy only reached 0.956
-    # (docs/alignment.md).
+    # held-out domain-classifier accuracy. Measured with the defaults (relative-drift paired
+    # term): 0.978 -> 0.744, drift 1.140 -> 0.562 (docs/alignment.md, panel table).
     assert after["relative_drift"] <= 0.7 * before["relative_drift"]
     assert after["domain_accuracy"] <= before["domain_accuracy"] - 0.15
+
+
+# ---------------------------------------------------------------- carried tasks, outcome, objectives
+
+
+def _task(name, kind, values):
+    target = torch.as_tensor(values, dtype=torch.long if kind == "classification" else torch.float32)
+    return {"name": name, "kind": kind, "target": target, "mask": torch.ones(len(values), dtype=torch.bool)}
+
+
+def test_only_tasks_the_encoder_carries_are_kept_and_guarded():
+    # Reference for the classification rule: scipy's exact one-sided binomial test of the
+    # slice accuracy against the training majority rate at the 5% level (common practice).
+    from scipy.stats import binomtest
+
+    from invariance.align.monitor import carried
+
+    rng = np.random.default_rng(0)
+    n = 120
+    labels = rng.integers(0, 3, size=n)
+    informative = np.eye(3)[labels] * 3 + rng.normal(size=(n, 3))
+    features = np.hstack([informative, rng.normal(size=(n, 5))])
+    y_signal = features[:, 0] + 0.1 * rng.normal(size=n)
+    tasks = [_task("part", "classification", labels), _task("noise", "classification", rng.integers(0, 3, size=n)),
+             _task("x", "regression", y_signal), _task("angle", "regression", rng.normal(size=n))]
+    train_pos, val_pos = np.arange(80), np.arange(80, 120)
+    verdicts = carried(tasks, features, train_pos, val_pos)
+    assert verdicts["part"]["carried"] and verdicts["x"]["carried"]
+    assert not verdicts["noise"]["carried"] and not verdicts["angle"]["carried"]
+    k = round(verdicts["noise"]["score"] * 40)
+    assert binomtest(k, 40, verdicts["noise"]["floor"], alternative="greater").pvalue >= 0.05
+    assert verdicts["angle"]["floor"] == pytest.approx(_informative_r2(40))
+    # A task that is not carried cannot stop a run: the guard only reads the tasks it is given.
+    assert _guard_failure({"angle": 0.5}, {"angle": -3.0}, 0.05, {}, 40) is None
+
+
+def test_outcome_is_judged_on_held_out_figures():
+    from invariance.align.outcome import judge
+
+    def metrics(acc, drift, part):
+        return {"domain_classifier": {"accuracy": acc}, "paired_drift": {"relative_drift": drift},
+                "probe": {"part": {"kind": "classification", "clean": part, "cluttered": 0.3}}}
+
+    # The issue's 128 px run: domain accuracy 0.528 -> 0.667 and drift 0.535 -> 0.550: worse.
+    assert not judge(metrics(0.528, 0.535, 0.9), metrics(0.667, 0.550, 0.9), ["part"], 0.05, 90)[0]
+    # Drift falls but the domain accuracy rises beyond sampling noise: 1.96 * sqrt(2 p (1 - p) / 180)
+    # = 0.103 at p = 0.5 (two-proportion z, common practice); 0.5 -> 0.65 is beyond it.
+    assert not judge(metrics(0.5, 1.0, 0.9), metrics(0.65, 0.5, 0.9), [], 0.05, 90)[0]
+    assert judge(metrics(0.5, 1.0, 0.9), metrics(0.58, 0.5, 0.9), [], 0.05, 90)[0]
+    # A carried clean probe that falls beyond the guard's allowance: not improved.
+    ok, reason = judge(metrics(0.9, 1.0, 0.95), metrics(0.7, 0.5, 0.70), ["part"], 0.05, 90)
+    assert not ok and "part" in reason
+    # The same fall on a task the encoder does not carry does not count.
+    assert judge(metrics(0.9, 1.0, 0.95), metrics(0.7, 0.5, 0.70), [], 0.05, 90)[0]
+
+
+@pytest.mark.parametrize("objective, zero", [("dann", {"paired", "mean"}), ("paired", {"domain"}), ("combined", set())])
+def test_objectives_switch_the_terms(objective, zero):
+    from invariance.align.loop import objective_weights
+
+    weights = objective_weights(AlignmentOptions(objective=objective))
+    assert {k for k, v in weights.items() if v == 0.0} == zero
+    assert weights["anchor"] == AlignmentOptions().anchor_weight  # the anchor is in every objective
+
+
+def test_unknown_objective_is_refused():
+    with pytest.raises(InvalidParameter, match="objective='mmd'"):
+        AlignmentOptions(objective="mmd")
+
+
+def _relabelled(pairs, **columns):
+    import copy
+
+    out = copy.deepcopy(pairs)
+    for name, values in columns.items():
+        if values is None:
+            out.labels.tasks.pop(name, None)
+            out.labels.task_kinds.pop(name, None)
+        else:
+            out.labels.tasks[name] = values
+    return out
+
+
+def test_bad_labels_are_handled_and_reported(small_set, random_zoo_encoder, tmp_path):
+    # A constant column has no task to keep; a target in units of 1e6 is standardised (its
+    # verdict is that of the same target in its own units); a column with labels for only
+    # some pairs is checked on the pairs that have one; no labels at all: the guard has
+    # nothing to watch and the run says so.
+    x = np.asarray(small_set.labels.tasks["x"], dtype=float)
+    partial = x.copy()
+    partial[::3] = np.nan
+    odd = _relabelled(small_set, part=np.full(len(small_set), "bolt", dtype=object), x=x * 1e6, y=partial)
+    lines = []
+    result = align_encoder(odd, random_zoo_encoder, out=tmp_path / "odd.pt", **{**QUICK, "progress": lines.append})
+    plain = align_encoder(small_set, random_zoo_encoder, out=tmp_path / "plain.pt", **QUICK)
+    assert "part" not in result["task_check"]  # one class: no head, no guard
+    assert result["task_check"]["x"]["score"] == pytest.approx(plain["task_check"]["x"]["score"], abs=1e-6)
+    assert "y" in result["task_check"]
+    assert all(np.isfinite(result["curves"][f"loss_{k}"]).all() for k in LOSS_NAMES)
+    unlabelled = _relabelled(small_set, **{k: None for k in list(small_set.labels.tasks)})
+    lines = []
+    result = align_encoder(unlabelled, random_zoo_encoder, out=tmp_path / "none.pt",
+                           **{**QUICK, "progress": lines.append})
+    assert result["task_check"] == {} and result["settings"]["tasks"] == []
+    assert any("guard has nothing to watch" in line for line in lines)
+
+
+def test_a_run_that_does_not_improve_writes_no_checkpoint(small_set, random_zoo_encoder, tmp_path):
+    # Learning rate 1e-8: the kept state equals the original to float rounding, so the
+    # held-out drift cannot fall and the outcome must say "not improved".
+    out = tmp_path / "unchanged.pt"
+    options = AlignmentOptions(steps=6, batch_size=8, learning_rate=1e-8)
+    result = align_encoder(small_set, random_zoo_encoder, out=out, options=options,
+                           scoring=ScoringOptions(permutations=20), progress=False)
+    assert result["improved"] is False and result["checkpoint"] is None
+    assert "no checkpoint written" in result["outcome"]
+    assert not out.exists() and not list(tmp_path.glob(".*unjudged"))
+
+
+def test_minutes_cut_training_short_and_say_so(small_set, random_zoo_encoder, tmp_path):
+    # 0.01 minutes cannot hold caching, scoring and 10,000 steps: the run stops early.
+    lines = []
+    result = align_encoder(small_set, random_zoo_encoder, out=tmp_path / "short.pt",
+                           options=AlignmentOptions(steps=10_000, batch_size=8, minutes=0.01),
+                           scoring=ScoringOptions(permutations=20), progress=lines.append)
+    assert result["cut_short"] is True and result["steps_run"] < 10_000
+    assert any("cut short" in line for line in lines)
+    assert any("should take about" in line for line in lines)

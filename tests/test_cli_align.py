@@ -19,7 +19,11 @@ from invariance.cli import cli
 torch.set_num_threads(min(2, torch.get_num_threads()))  # a shared 2-core machine
 
 ENCODER = "python:invariance.zoo:workbench_cnn"  # untrained: no shipped weights needed
+TRAINED = "python:invariance.zoo:clean_only_encoder"  # shipped weights, trained on clean scenes
 QUICK = ["--steps", "4", "--batch-size", "8", "--permutations", "20", "--quiet"]
+# 40 steps on 120 pairs improve the clean-only encoder on its 36 held-out pairs (as in
+# test_align.py's RUN, whose 10% guard margin this shares).
+IMPROVING = ["--steps", "40", "--batch-size", "16", "--guard-margin", "0.1", "--permutations", "20", "--quiet"]
 
 
 @pytest.fixture(scope="module")
@@ -32,12 +36,22 @@ def scene_dir(tmp_path_factory):
 
 
 @pytest.fixture(scope="module")
-def aligned(scene_dir, tmp_path_factory):
+def trained_dir(tmp_path_factory):
+    from invariance.scenes import generate_scenes
+
+    root = tmp_path_factory.mktemp("cli_align_trained") / "set"
+    generate_scenes(root, pairs=120, size=64, seed=11, level=3)
+    return root
+
+
+@pytest.fixture(scope="module")
+def aligned(trained_dir, tmp_path_factory):
     folder = tmp_path_factory.mktemp("cli_align_out")
     out, result = folder / "aligned.pt", folder / "aligned.json"
-    res = CliRunner().invoke(cli, ["align", str(scene_dir), "--encoder", ENCODER, "--out", str(out),
-                                   "--json", str(result), "--mean-weight", "2.5", "--paired-weight", "0.5",
-                                   "--anchor-weight", "4", "--held-out", "0.3", *QUICK])
+    res = CliRunner().invoke(cli, ["align", str(trained_dir), "--encoder", TRAINED, "--out", str(out),
+                                   "--json", str(result), "--mean-weight", "12", "--paired-weight", "3.5",
+                                   "--anchor-weight", "8", "--held-out", "0.3", "--objective", "combined",
+                                   *IMPROVING])
     return {"res": res, "out": out, "json": result, "folder": folder}
 
 
@@ -47,18 +61,21 @@ def test_align_writes_checkpoint_and_result_with_the_given_weights(aligned):
     assert aligned["out"].is_file()
     result = json.loads(aligned["json"].read_text())
     settings = result["alignment"]["settings"]
-    assert (settings["mean_weight"], settings["paired_weight"], settings["anchor_weight"]) == (2.5, 0.5, 4.0)
-    assert settings["steps"] == 4 and result["alignment"]["steps_run"] == 4
-    assert result["alignment"]["held_out_pairs"] == 12  # 30% of 40 pairs
+    assert (settings["mean_weight"], settings["paired_weight"], settings["anchor_weight"]) == (12.0, 3.5, 8.0)
+    assert settings["steps"] == 40 and result["alignment"]["steps_run"] == 40
+    assert settings["objective"] == "combined"
+    assert result["alignment"]["held_out_pairs"] == 36  # 30% of 120 pairs
+    assert result["alignment"]["improved"] is True and result["encoder"]["spec"] == f"checkpoint:{aligned['out']}"
     assert set(result["alignment"]["curves"]) >= {"loss_mean", "loss_paired", "val_domain_accuracy"}
     # stdout: before/after and the caution
     assert "before" in res.output and "after" in res.output and "checkpoint:" in res.output
+    assert "improved: held-out relative drift" in res.output
     assert "not a certificate" in res.output
 
 
-def test_aligned_checkpoint_is_scored_by_another_command(aligned, scene_dir):
+def test_aligned_checkpoint_is_scored_by_another_command(aligned, trained_dir):
     result_path = aligned["folder"] / "score.json"
-    res = CliRunner().invoke(cli, ["score", str(scene_dir), "--encoder", f"checkpoint:{aligned['out']}",
+    res = CliRunner().invoke(cli, ["score", str(trained_dir), "--encoder", f"checkpoint:{aligned['out']}",
                                    "--json", str(result_path), "--permutations", "20", "--quiet", "--no-cache"])
     assert res.exit_code == 0, res.output
     metrics = json.loads(result_path.read_text())["metrics"]
@@ -82,3 +99,26 @@ def test_align_rejects_a_negative_weight_as_a_usage_error(scene_dir, tmp_path):
                                    "--mean-weight", "-1", *QUICK])
     assert res.exit_code == 2 and "--mean-weight" in res.output
     assert not (tmp_path / "x.pt").exists()
+
+
+def test_a_run_that_does_not_improve_writes_no_checkpoint_and_can_fail_the_command(scene_dir, tmp_path):
+    # Learning rate 1e-8 leaves the encoder as it was: the held-out drift cannot fall.
+    out, result = tmp_path / "never.pt", tmp_path / "result.json"
+    args = ["align", str(scene_dir), "--encoder", ENCODER, "--out", str(out), "--json", str(result),
+            "--learning-rate", "1e-8", *QUICK]
+    res = CliRunner().invoke(cli, args)
+    assert res.exit_code == 0, res.output
+    assert "not improved:" in res.output and "not presented as aligned" in res.output
+    assert not out.exists()
+    written = json.loads(result.read_text())
+    assert written["alignment"]["improved"] is False and written["alignment"]["checkpoint"] is None
+    assert written["encoder"]["spec"] == ENCODER  # the result names the original, not a missing checkpoint
+    assert written["metrics"] == written["alignment"]["before"]
+    res = CliRunner().invoke(cli, [*args, "--require-improvement"])
+    assert res.exit_code == 3, res.output
+
+
+def test_unknown_objective_is_a_usage_error(scene_dir, tmp_path):
+    res = CliRunner().invoke(cli, ["align", str(scene_dir), "--encoder", ENCODER, "--out", str(tmp_path / "x.pt"),
+                                   "--objective", "mmd", *QUICK])
+    assert res.exit_code == 2 and "--objective" in res.output

@@ -7,7 +7,7 @@ import re
 
 import pytest
 
-from invariance.demo import run_demo
+from invariance.demo import ALIGN_STEPS, run_demo
 
 pytestmark = pytest.mark.slow
 
@@ -19,6 +19,11 @@ def _by_name(comparison):
 def test_demo_ranks_a_clutter_robust_encoder_ahead_with_separate_intervals(tmp_path):
     summary = run_demo(tmp_path / "demo", progress=False, cache_dir=tmp_path / "cache")
     assert len(summary) == 5 and summary[0].startswith("report: ")
+    alignment = json.loads((tmp_path / "demo" / "alignment.json").read_text())["alignment"]
+    # The demo runs by steps, never by minutes: its figures do not depend on the machine's load.
+    assert alignment["steps_run"] == ALIGN_STEPS or alignment["stopped_because"].startswith("guard:")
+    assert alignment["cut_short"] is False and alignment["settings"]["minutes"] is None
+    assert alignment["improved"] is True, alignment["outcome"]  # else the comparison has no aligned encoder
     comparison = json.loads((tmp_path / "demo" / "comparison.json").read_text())
     results = _by_name(comparison)
     assert len(results) == 4 and not comparison["failures"]

@@ -119,3 +119,41 @@ def test_train_demo_refuses_too_few_pairs(tmp_path, capsys):
     assert main(["--out", str(tmp_path), "--pairs", "10"]) == 1
     assert "--pairs 10 is too few" in capsys.readouterr().err
     assert not any(tmp_path.iterdir())
+
+
+# ---------------------------------------------------------------- alignment panel architectures
+
+
+@pytest.mark.parametrize("builder, size, dim", [("sequential_cnn", 64, 64), ("digits_cnn", 32, 64),
+                                                ("resnet18_64", 64, 512), ("small_vit", 64, 64)])
+def test_panel_architectures_give_pooled_features_at_their_size(builder, size, dim):
+    from invariance import zoo
+
+    net = getattr(zoo, builder)().eval()
+    assert net.invariance_preprocess["image_size"] == size
+    with torch.no_grad():
+        out = net(torch.randn(2, 3, size, size))
+    assert out.shape == (2, dim)
+
+
+def test_panel_architectures_leave_the_global_random_state_alone_and_repeat():
+    from invariance import zoo
+
+    state = torch.get_rng_state()
+    a, b = zoo.small_vit(), zoo.small_vit()
+    assert torch.equal(torch.get_rng_state(), state)
+    assert all(torch.equal(p, q) for p, q in zip(a.parameters(), b.parameters()))
+
+
+def test_sequential_cnn_has_integer_named_children_and_the_vit_is_not_a_chain():
+    # The two shapes of encoder the alignment must split: an nn.Sequential with children
+    # "0".."9", and a ViT whose forward adds a class token between its children.
+    from invariance import zoo
+
+    assert [n for n, _ in zoo.sequential_cnn().named_children()] == [str(i) for i in range(10)]
+    vit = zoo.small_vit().eval()
+    x = torch.randn(1, 3, 64, 64)
+    with pytest.raises(Exception):
+        h = x
+        for child in vit.children():
+            h = child(h)

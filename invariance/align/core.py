@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import copy
+import os
+import time
 from pathlib import Path
 
 import numpy as np
@@ -16,6 +18,8 @@ from ..options import AlignmentOptions, ExtractionOptions, ScoringOptions, optio
 from ..progress import as_reporter
 from .heads import _build_tasks, _check_labels, _standardiser
 from .loop import LOSS_NAMES, _Run, train
+from .monitor import carried
+from .outcome import judge
 from .splits import split_pairs, validation_slice
 from .trunk import SPLIT_CHECK_IMAGES, preprocessed, split_module, tail_features, trunk_activations
 
@@ -52,14 +56,21 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
                + mean_weight * lambda_p * mean
 
     ``anchor`` keeps clean features near the original encoder's, ``task`` keeps one
-    warm-started linear head per label column, ``paired`` pulls each cluttered feature to
-    its own scene's clean feature, and ``mean`` pulls the mean cluttered feature onto the
-    mean clean one in whitened coordinates (see :mod:`invariance.align.losses`). Only the
-    stages from ``options.train_from`` on are trained; earlier stages run once and are
-    cached. Every ``EVAL_EVERY`` steps (20) the validation slice is checked; the state with
-    the lowest slice drift is kept, and training stops when a clean probe falls more than
-    ``options.guard_margin`` below its start. The defaults and the measurements that chose
-    them are in ``docs/alignment.md``.
+    warm-started linear head per label column the encoder carries (clean probe
+    significantly above chance on the validation slice), ``paired`` is the batch's
+    relative cosine drift, and ``mean`` pulls the mean cluttered feature onto the mean
+    clean one in whitened coordinates, over its starting value (see
+    :mod:`invariance.align.losses`); ``options.objective`` keeps all (``combined``), the
+    reversal only (``dann``) or the paired and mean terms only (``paired``). Only the
+    stages from ``options.train_from`` on are trained (default: the shortest run of last
+    stages holding half the parameters, split with torch.fx when the forward is not a
+    chain); earlier stages run once and are cached. Every ``EVAL_EVERY`` steps (20) the
+    validation slice is checked; the state with the lowest slice drift that passes the
+    guard is kept, and training stops when a carried clean probe stays more than
+    ``options.guard_margin`` below its start for three checks. The kept state is then
+    judged on the held-out pairs, and its checkpoint is written only when it beats the
+    original there (``improved``). The defaults and the measurements that chose them are
+    in ``docs/alignment.md``.
 
     Every option is validated (by its options object) before any work, and the caller's
     global random state is left as it was: the seed ``scoring.seed`` drives local
@@ -77,7 +88,8 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
         How to train; default ``AlignmentOptions()``: steps=800, minutes=None,
         train_from=None (the last stage with parameters), held_out_fraction=0.3,
         anchor_weight=10, paired_weight=3, mean_weight=10, task_weight=1,
-        learning_rate=0.001, guard_margin=0.05, batch_size=32 (pairs per step).
+        learning_rate=0.001, guard_margin=0.05, batch_size=32 (pairs per step),
+        objective=combined.
     scoring : ScoringOptions, optional
         Seed of the splits, initialisation and batch order, and the before/after scoring;
         default ``ScoringOptions()``: seed=0, permutations=1000, folds=5, tsne=False.
@@ -98,7 +110,12 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
         The result JSON's ``alignment`` object: ``before``, ``after`` (metrics on the
         held-out pairs), ``held_out_pairs``, ``align_pairs``, ``validation_pairs``,
         ``held_out_indices``, ``checkpoint``, ``train_from``, ``stopped_because``,
-        ``steps_run``, ``best_step``, ``seconds``, ``settings`` and ``curves``.
+        ``steps_run``, ``best_step``, ``seconds``, ``settings`` and ``curves``; and
+        ``improved`` (whether the kept state beat the original on the held-out pairs; when
+        false no checkpoint is written and ``checkpoint`` is None), ``outcome`` (why, one
+        line), ``cut_short`` (the minutes limit stopped training), ``estimated_seconds``
+        and ``task_check`` (per task: clean probe on the validation slice, the floor it had
+        to beat, and whether the encoder carries it).
 
     Raises
     ------
@@ -123,50 +140,112 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
         raise InvalidParameter("encoder", f"encoder={encoder!r} is not valid; pass an Encoder from load_encoder")
     if batch_callback is not None and not callable(batch_callback):
         raise InvalidParameter("batch_callback", f"batch_callback={batch_callback!r} is not valid; pass a callable")
+    started = time.perf_counter()
     reporter, out, seed = as_reporter(progress), check_writable(out), scoring.seed
     _check_labels(pairs)  # before any work: a mismatch is the user's data, not a crash later
     align_idx, held_idx = split_pairs(len(pairs), held_out_fraction=options.held_out_fraction, seed=seed,
                                       folds=scoring.folds)
     train_idx, val_idx = validation_slice(align_idx, seed=seed)
-    aligned, run, node = _prepare(pairs, encoder, options.train_from, (align_idx, train_idx, val_idx),
-                                  extraction.batch_size, seed)
-    audit = None if batch_callback is None else (lambda pos: batch_callback(align_idx[pos]))
-    state, info = train(run, options, reporter, audit)
-    run.tail.load_state_dict(state)
-    settings = {**options.settings(), "train_from": node, "seed": seed, "tasks": [t["name"] for t in run.tasks]}
-    _save(out, encoder, aligned, pairs, settings, info, held_idx)
-    if info["stopped_because"] == "interrupted":
-        raise AlignmentInterrupted(out, info["steps_run"])
+    aligned, run, node, verdicts = _prepare(pairs, encoder, options.train_from, (align_idx, train_idx, val_idx),
+                                            extraction.batch_size, seed)
+    _announce(reporter, node, run, verdicts, options)
     held_out = pairs.subset(held_idx)
+    scoring_start = time.perf_counter()
     before = _held_out_metrics(held_out, encoder, scoring, extraction)
-    after = _held_out_metrics(held_out, _reload(out, encoder), scoring, extraction)
+    deadline = _training_deadline(options, started, time.perf_counter() - scoring_start)
+    audit = None if batch_callback is None else (lambda pos: batch_callback(align_idx[pos]))
+    state, info = train(run, options, reporter, audit, deadline)
+    run.tail.load_state_dict(state)
+    carried = [t["name"] for t in run.tasks]
+    settings = {**options.settings(), "train_from": node, "seed": seed, "tasks": carried}
+    if info["stopped_because"] == "interrupted":
+        _save(out, encoder, aligned, pairs, settings, info, held_idx)
+        raise AlignmentInterrupted(out, info["steps_run"])
+    if info["cut_short"]:
+        reporter.note(f"align: cut short by the {options.minutes} minute limit after {info['steps_run']} of "
+                      f"{options.steps} steps; the figures depend on this machine's speed")
+    after, improved, reason = _measure_and_keep(out, encoder, aligned, pairs, settings, info, held_idx,
+                                                (before, carried, options.guard_margin), scoring, extraction)
+    reporter.note(f"align: {'improved' if improved else 'not improved'}: {reason}")
     return {
         "before": before, "after": after,
         "held_out_pairs": len(held_idx), "align_pairs": len(align_idx), "validation_pairs": len(val_idx),
-        "held_out_indices": held_idx.tolist(), "checkpoint": str(out), "train_from": node,
+        "held_out_indices": held_idx.tolist(), "checkpoint": str(out) if improved else None, "train_from": node,
         "stopped_because": info["stopped_because"], "steps_run": info["steps_run"], "best_step": info["best_step"],
         "seconds": round(info["seconds"], 3), "settings": settings, "curves": info["curves"],
+        "improved": improved, "outcome": reason, "cut_short": info["cut_short"],
+        "estimated_seconds": round(info["estimated_seconds"], 1), "task_check": verdicts,
     }
 
 
+# Share of the command's minutes held back beyond one held-out scoring's measured time, for
+# saving and reloading the checkpoint (common practice).
+_SCORING_HEADROOM = 1.25
+
+
+def _training_deadline(options, started: float, scoring_seconds: float) -> float | None:
+    """When training must stop so that the whole command fits ``options.minutes``."""
+    if options.minutes is None:
+        return None
+    return started + 60.0 * options.minutes - _SCORING_HEADROOM * scoring_seconds
+
+
+def _announce(reporter, node, run, verdicts, options) -> None:
+    share = sum(p.numel() for p in run.tail.parameters()) / max(run.total_parameters, 1)
+    how = "--train-from" if options.train_from is not None else "the last stages holding half the parameters"
+    reporter.note(f"align: training from {node!r} ({share:.0%} of the encoder's parameters; {how}), "
+                  f"objective {options.objective}")
+    if not verdicts:
+        reporter.note("align: no task labels; alignment runs on the unsupervised terms and the guard has "
+                      "nothing to watch")
+        return
+    for name, v in verdicts.items():
+        state = "carried, guarded" if v["carried"] else "not carried (not guarded, no task head)"
+        reporter.note(f"align: task {name!r}: clean probe {v['score']:.3f} on the validation slice, "
+                      f"floor {v['floor']:.3f}: {state}")
+    if not any(v["carried"] for v in verdicts.values()):
+        reporter.note("align: the encoder carries none of the labelled tasks; the guard has nothing to watch")
+
+
+def _measure_and_keep(out, encoder, aligned, pairs, settings, info, held_idx, judged, scoring, extraction):
+    """Save the kept state beside ``out``, score it on the held-out pairs, keep it only if better."""
+    before, carried, margin = judged
+    staging = out.with_name(f".{out.name}.unjudged")
+    _save(staging, encoder, aligned, pairs, settings, info, held_idx)
+    try:
+        after = _held_out_metrics(pairs.subset(held_idx), _reload(staging, encoder), scoring, extraction)
+        improved, reason = judge(before, after, carried, margin, len(held_idx))
+        if improved:
+            os.replace(staging, out)
+    finally:
+        staging.unlink(missing_ok=True)
+    if not improved:
+        reason += "; no checkpoint written: the original encoder stays the better one"
+    return after, improved, reason
+
+
 def _prepare(pairs, encoder, train_from, indices, batch_size, seed):
-    """The trained copy, its training run (cached activations, warm-started heads) and its node."""
+    """The trained copy, its training run (cached activations, carried tasks' heads), its node and the task check."""
     align_idx, train_idx, val_idx = indices
     aligned = copy.deepcopy(encoder.module).eval()
     example = preprocessed([pairs.clean[i] for i in align_idx[:SPLIT_CHECK_IMAGES]], encoder)
     trunk, tail, node = split_module(aligned, train_from, example)
-    trunk.requires_grad_(False)
+    aligned.requires_grad_(False)
     tail.requires_grad_(True)
     act_clean = trunk_activations([pairs.clean[i] for i in align_idx], encoder, trunk, batch_size)
     act_clut = trunk_activations([pairs.cluttered[i] for i in align_idx], encoder, trunk, batch_size)
     train_pos, val_pos = np.searchsorted(align_idx, train_idx), np.searchsorted(align_idx, val_idx)
-    f0_train = tail_features(tail, act_clean[train_pos]).cpu().numpy()
-    mean, spread = _standardiser(f0_train)
+    f0 = tail_features(tail, act_clean).cpu().numpy()
+    mean, spread = _standardiser(f0[train_pos])
     tasks = {k: np.asarray(v)[align_idx] for k, v in _check_labels(pairs).items()}
     kinds = pairs.labels.task_kinds if pairs.labels is not None else {}
-    built = _build_tasks(tasks, kinds, train_pos, (f0_train - mean) / spread)
+    built = _build_tasks(tasks, kinds, train_pos, (f0[train_pos] - mean) / spread)
+    verdicts = carried(built, f0, train_pos, val_pos)
+    built = [t for t in built if verdicts.get(t["name"], {}).get("carried")]
     head_input = (torch.as_tensor(mean, dtype=torch.float32, device=act_clean.device), spread)
-    return aligned, _Run(tail, act_clean, act_clut, train_pos, val_pos, built, head_input, seed), node
+    run = _Run(tail, act_clean, act_clut, train_pos, val_pos, built, head_input, seed)
+    run.total_parameters = sum(p.numel() for p in aligned.parameters())
+    return aligned, run, node, verdicts
 
 
 def _reload(out: Path, encoder):

@@ -24,7 +24,7 @@ import torch
 from torch import nn
 
 from .heads import _task_loss
-from .losses import anchor_loss, domain_loss, mean_matching_loss, paired_loss, paired_variance, whitening
+from .losses import anchor_loss, domain_loss, mean_matching_loss, paired_drift_loss, whitening
 from .monitor import _guard_failure, check_slice
 from .reversal import dann_lambda, dann_learning_rate, make_discriminator
 from .trunk import tail_features
@@ -35,6 +35,8 @@ LOSS_NAMES = ("total", "domain", "anchor", "task", "paired", "mean")
 # Steps between validation checks: the kept state is chosen among 40 checked ones in the
 # default 800 steps (common practice).
 EVAL_EVERY = 20
+# Consecutive failed guard checks that stop training (see _Training.evaluate).
+GUARD_PATIENCE = 3
 
 
 class _Run:
@@ -64,8 +66,16 @@ class _Run:
         self.f0_clean = tail_features(tail, act_clean)
         f0_train = self.f0_clean[train_pos]
         self.scale = f0_train.var(dim=0).mean().clamp_min(1e-12)
-        self.feature_var = paired_variance(f0_train)
         self.whitening = whitening(f0_train)
+        # The discriminator reads features standardised by the original clean training
+        # features, so its gradients do not depend on the encoder's feature scale.
+        self.standardise = (f0_train.mean(dim=0), f0_train.std(dim=0).clamp_min(1e-6 * float(self.scale) ** 0.5))
+        # The mean term is divided by its value on the original features of the training
+        # pairs: it starts at 1 whatever the feature scale, dimension and the strength of
+        # the clutter, so its weight means the same on every encoder. The paired term is a
+        # relative drift, scale-free by construction (losses.paired_drift_loss).
+        f0_clut = tail_features(tail, act_cluttered[train_pos])
+        self.norms = {"mean": float(mean_matching_loss(f0_train, f0_clut, self.whitening)) or 1.0}
         device = self.f0_clean.device
         generator = torch.Generator().manual_seed(seed)
         self.discriminator = make_discriminator(self.f0_clean.shape[1], generator).to(device)
@@ -92,17 +102,20 @@ class _Run:
         f_clean = self.tail(self.act_clean[batch])
         f_clut = self.tail(self.act_cluttered[batch])
         parts = {}
-        parts["domain"], parts["discriminator_accuracy"] = domain_loss(self.discriminator, f_clean, f_clut, lambda_)
+        mu, sd = self.standardise
+        parts["domain"], parts["discriminator_accuracy"] = domain_loss(
+            self.discriminator, (f_clean - mu) / sd, (f_clut - mu) / sd, lambda_)
         parts["anchor"] = anchor_loss(f_clean, self.f0_clean[batch], self.scale)
         head_features = (f_clean - self.head_input[0]) / self.head_input[1]
         parts["task"] = _task_loss(self.tasks, head_features, torch.as_tensor(batch))
-        parts["paired"] = paired_loss(f_clean, f_clut, self.feature_var)
-        parts["mean"] = mean_matching_loss(f_clean, f_clut, self.whitening)
+        parts["paired"] = paired_drift_loss(f_clean, f_clut)
+        parts["mean"] = mean_matching_loss(f_clean, f_clut, self.whitening) / self.norms["mean"]
         # The mean term is an adaptation loss like the domain term, so it follows the same
         # lambda_p ramp: at full weight from step 0 its early gradients, while the means are
         # still far apart, overrode the anchor and tripped the clean probe guard.
-        parts["total"] = (parts["domain"] + weights["anchor"] * parts["anchor"] + weights["task"] * parts["task"]
-                          + weights["paired"] * parts["paired"] + weights["mean"] * lambda_ * parts["mean"])
+        parts["total"] = (weights.get("domain", 1.0) * parts["domain"] + weights["anchor"] * parts["anchor"]
+                          + weights["task"] * parts["task"] + weights["paired"] * parts["paired"]
+                          + weights["mean"] * lambda_ * parts["mean"])
         return parts
 
     def validate(self) -> dict:
@@ -154,6 +167,17 @@ def progress_line(curves: dict, steps: int) -> str:
             f"val domain acc {row['val_domain_accuracy']:.3f}, val drift {drift}, val clean probe {probe}")
 
 
+def objective_weights(options) -> dict:
+    """Loss weights of ``options.objective``: reversal only, paired + mean only, or both."""
+    weights = {"domain": 1.0, "anchor": options.anchor_weight, "task": options.task_weight,
+               "paired": options.paired_weight, "mean": options.mean_weight}
+    if options.objective == "dann":  # Ganin et al., JMLR 2016: the adversary alone
+        weights.update(paired=0.0, mean=0.0)
+    elif options.objective == "paired":
+        weights.update(domain=0.0)
+    return weights
+
+
 def _snapshot(module: nn.Module) -> dict:
     return {k: v.detach().clone() for k, v in module.state_dict().items()}
 
@@ -163,12 +187,12 @@ class _Training:
 
     def __init__(self, run: _Run, options, reporter, batch_callback):
         self.run, self.options, self.reporter, self.batch_callback = run, options, reporter, batch_callback
-        self.weights = {"anchor": options.anchor_weight, "task": options.task_weight,
-                        "paired": options.paired_weight, "mean": options.mean_weight}
+        self.weights = objective_weights(options)
         self.optimizer = torch.optim.Adam(run.parameters(), lr=options.learning_rate)
         self.curves = _empty_curves()
         self.kinds = {t["name"]: t["kind"] for t in run.tasks}
         self.sums, self.count = {}, 0
+        self.failures = 0
 
     def start(self) -> None:
         """Row 0: the losses of the first batch untrained, and the slice as it starts."""
@@ -206,45 +230,70 @@ class _Training:
                                  len(self.run.val_pos))
         if failure is None and val["drift"] < self.best["drift"]:
             self.best = {"state": _snapshot(self.run.tail), "drift": val["drift"], "step": step}
-        return failure
+        # A state that fails the guard is never kept; training stops only when the guard
+        # fails GUARD_PATIENCE checks in a row, so one noisy slice check does not end a run
+        # that recovers (common practice for early stopping with patience).
+        self.failures = self.failures + 1 if failure else 0
+        return failure if self.failures >= GUARD_PATIENCE else None
 
     def _log(self, step, means, lambda_, lr, val) -> None:
         _record(self.curves, step, means, lambda_, lr, val)
         self.reporter.note(progress_line(self.curves, self.options.steps))
 
 
-def train(run: _Run, options, reporter, batch_callback=None) -> tuple[dict, dict]:
+def estimate_seconds(training: "_Training", validate_seconds: float) -> float:
+    """Seconds the training should take: one timed trial step (no update) times the steps,
+    plus one slice check (timed at step 0) per EVAL_EVERY steps."""
+    batch = training.run.next_batch(training.options.batch_size)
+    training.run._queue = np.concatenate([batch, training.run._queue])  # the trial consumes no batch
+    start = time.perf_counter()
+    parts = training.run.losses(batch, 0.0, training.weights)
+    parts["total"].backward()
+    training.optimizer.zero_grad(set_to_none=True)
+    step_seconds = time.perf_counter() - start
+    steps = training.options.steps
+    return steps * step_seconds + math.ceil(steps / EVAL_EVERY) * validate_seconds
+
+
+def train(run: _Run, options, reporter, batch_callback=None, deadline: float | None = None) -> tuple[dict, dict]:
     """The DANN loop with validation every EVAL_EVERY steps.
 
     The schedules follow the steps, not the clock, so a run is reproducible whatever the
-    machine's speed; ``options.minutes`` only stops the loop early.
+    machine's speed; a deadline only stops the loop early, and the run says so
+    (``cut_short``).
 
     Parameters
     ----------
     run : _Run
     options : invariance.options.AlignmentOptions
     reporter : invariance.progress.Reporter
-        Receives one line per validation.
+        Receives the time estimate and one line per validation.
     batch_callback : callable, optional
         Called with the positions of every training batch.
+    deadline : float, optional
+        ``time.perf_counter()`` value at which training stops (the command's ``minutes``
+        less what caching and held-out scoring need).
 
     Returns
     -------
     state : dict
         The tail's state with the lowest validation drift (step 0 included).
     info : dict
-        ``steps_run``, ``stopped_because``, ``curves``, ``best_step``, ``seconds``.
+        ``steps_run``, ``stopped_because``, ``cut_short``, ``curves``, ``best_step``,
+        ``seconds``, ``estimated_seconds``.
     """
     training = _Training(run, options, reporter, batch_callback)
     run.tail.eval()
     start_time = time.perf_counter()
-    deadline = None if options.minutes is None else start_time + 60.0 * options.minutes
     step, stopped = 0, f"steps: ran all {options.steps} steps"
     training.start()
+    estimate = estimate_seconds(training, time.perf_counter() - start_time)
+    reporter.note(f"align: {options.steps} steps should take about {estimate:.0f} s on this machine now")
     try:
         while step < options.steps:
             if deadline is not None and time.perf_counter() >= deadline:
-                stopped = f"minutes: the {options.minutes} minute limit was reached"
+                stopped = (f"minutes: the {options.minutes} minute limit was reached after {step} of "
+                           f"{options.steps} steps")
                 break
             lambda_, lr = training.step(step)
             step += 1
@@ -255,6 +304,7 @@ def train(run: _Run, options, reporter, batch_callback=None) -> tuple[dict, dict
                     break
     except KeyboardInterrupt:
         stopped = "interrupted"
-    info = {"steps_run": step, "stopped_because": stopped, "curves": training.curves,
-            "best_step": training.best["step"], "seconds": time.perf_counter() - start_time}
+    info = {"steps_run": step, "stopped_because": stopped, "cut_short": stopped.startswith("minutes:"),
+            "curves": training.curves, "best_step": training.best["step"],
+            "seconds": time.perf_counter() - start_time, "estimated_seconds": estimate}
     return training.best["state"], info

@@ -25,6 +25,7 @@ _DRIFT_RESAMPLES = 100
 # Only the fixed C = 1 (scikit-learn's default): an inner search over C on a slice of a
 # few dozen pairs would cost more than the training step it checks (common practice).
 _SLICE_CS = (1.0,)
+_SLICE_PERMUTATIONS = 0
 # Two-sided 95% normal quantile for the noise allowance of an accuracy (common practice).
 _Z_95 = 1.96
 # Level of the test that a regression probe predicts anything at the start (common practice).
@@ -32,7 +33,10 @@ _ALPHA = 0.05
 
 
 def _domain_accuracy(clean: np.ndarray, cluttered: np.ndarray, seed: int) -> float:
-    return float(domain_classifier(clean, cluttered, folds=VALIDATION_FOLDS, seed=seed, Cs=_SLICE_CS)["accuracy"])
+    # Only the accuracy is read, not the permutation test's p-value: no permutation test keeps
+    # the check cheap (the accuracy does not depend on the number of permutations).
+    return float(domain_classifier(clean, cluttered, folds=VALIDATION_FOLDS, seed=seed, Cs=_SLICE_CS,
+                                   permutations=_SLICE_PERMUTATIONS)["accuracy"])
 
 
 def _relative_drift(clean: np.ndarray, cluttered: np.ndarray) -> float:
@@ -83,6 +87,52 @@ def check_slice(f_clean: np.ndarray, f_cluttered_val: np.ndarray, tasks: list[di
     }
 
 
+def carried(tasks: list[dict], f_clean: np.ndarray, train_pos: np.ndarray, val_pos: np.ndarray) -> dict:
+    """Which tasks the original encoder carries, judged on the validation slice.
+
+    A classification task is carried when its clean probe's accuracy on the slice beats
+    the majority-class rate of the training pairs in a one-sided exact binomial test at
+    the 5% level; a regression task when its R^2 exceeds the critical r^2 of a two-sided
+    5% test of a correlation (:func:`_informative_r2`). Both are common practice. Only
+    carried tasks get a task head and a guard: a task the encoder never carried cannot
+    be kept, and its probe's noise must not stop a run.
+
+    Parameters
+    ----------
+    tasks : list of dict
+        Targets and masks per alignment pair (see :mod:`invariance.align.heads`).
+    f_clean : ndarray of shape (n_align, d)
+        The original encoder's clean features of the alignment pairs.
+    train_pos, val_pos : ndarray of int
+
+    Returns
+    -------
+    dict of str to dict
+        Per task: ``score`` (accuracy or R^2 on the slice), ``floor`` (the score it had
+        to beat) and ``carried`` (bool).
+    """
+    from scipy.stats import binomtest
+
+    scores = _probe_scores(tasks, f_clean[train_pos], f_clean[val_pos], train_pos, val_pos)
+    verdicts = {}
+    for task in tasks:
+        name = task["name"]
+        if name not in scores:
+            continue
+        mask = task["mask"].cpu().numpy()
+        n_val = int(mask[val_pos].sum())
+        if task["kind"] == "classification":
+            labels = task["target"].cpu().numpy()[train_pos][mask[train_pos]]
+            majority = float(np.bincount(labels).max() / len(labels))
+            k = int(round(scores[name] * n_val))
+            ok = k > majority * n_val and binomtest(k, n_val, majority, alternative="greater").pvalue < _ALPHA
+            verdicts[name] = {"score": scores[name], "floor": majority, "carried": bool(ok)}
+        else:
+            floor = _informative_r2(n_val) if n_val > 2 else math.inf
+            verdicts[name] = {"score": scores[name], "floor": floor, "carried": bool(scores[name] > floor)}
+    return verdicts
+
+
 def _informative_r2(n_val: int) -> float:
     """Smallest validation R^2 that shows the probe predicts its label at all.
 
@@ -129,7 +179,7 @@ def _guard_failure(start: dict, now: dict, margin: float, kinds: dict, n_val: in
     str or None
     """
     for name, s0 in start.items():
-        if kinds[name] == "regression" and s0 < _informative_r2(n_val):
+        if name not in kinds or (kinds[name] == "regression" and s0 < _informative_r2(n_val)):
             continue
         if name in now and s0 - now[name] > _allowed_fall(s0, kinds[name], margin, n_val):
             return (

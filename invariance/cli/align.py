@@ -3,15 +3,43 @@
 from __future__ import annotations
 
 import sys
-from dataclasses import replace
+from dataclasses import fields, replace
 from pathlib import Path
 
 import click
 
+from ..options import OBJECTIVES, AlignmentOptions
 from ._print import print_alignment
-from ._shared import (EXIT_CODES_HELP, alignment_options, check_outputs, encoder_option, extraction_options,
-                      handle_errors, json_option, quiet_option, report_option, scoring_options, weights_option,
-                      say, write_result_outputs)
+from ._shared import (_ALIGNMENT_HELP, EXIT_CODES_HELP, _option_group, check_outputs, encoder_option,
+                      extraction_options, flag_for, handle_errors, json_option, quiet_option, report_option,
+                      say, scoring_options, weights_option, write_result_outputs)
+
+_HELP = {
+    **_ALIGNMENT_HELP,
+    "minutes": "Wall-clock limit for the whole command (caching, training, held-out scoring); training "
+               "stops early to fit it and the result says it was cut short [default: none].",
+    "train_from": "First stage to train: a top-level block or a dotted submodule path (earlier stages are "
+                  "frozen and cached) [default: the last stages holding half the parameters].",
+    "objective": "combined (gradient reversal + paired and mean-matching terms), dann (gradient reversal "
+                 "only) or paired (paired and mean-matching terms only).",
+}
+# Exit status when --require-improvement is given and the alignment did not improve the
+# encoder: the code of a failed gate (docs/design.md).
+EXIT_NOT_IMPROVED = 3
+
+
+def _alignment_flags(func):
+    """One flag per AlignmentOptions field except the batch size (--batch-size sets it)."""
+    d = AlignmentOptions()
+    options = []
+    for f in fields(AlignmentOptions):
+        if f.name == "batch_size":
+            continue
+        value = getattr(d, f.name)
+        kind = {"steps": int, "train_from": str, "objective": click.Choice(OBJECTIVES)}.get(f.name, float)
+        options.append((f.name, click.option(flag_for(f.name), f.name, type=kind, default=value,
+                                             show_default=value is not None, help=_HELP[f.name])))
+    return _option_group("alignment", options, lambda values: AlignmentOptions(**values))(func)
 
 
 @click.command(epilog=EXIT_CODES_HELP)
@@ -19,25 +47,30 @@ from ._shared import (EXIT_CODES_HELP, alignment_options, check_outputs, encoder
 @encoder_option
 @weights_option
 @click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
-              help="Checkpoint to write (load it later as checkpoint:FILE).")
-@alignment_options
+              help="Checkpoint to write when the alignment improves the encoder (load it as checkpoint:FILE).")
+@_alignment_flags
+@click.option("--require-improvement", is_flag=True,
+              help="Exit 3 when the aligned state does not beat the original on the held-out pairs.")
 @json_option
 @report_option
 @scoring_options(folds=False, tsne=False)
 @extraction_options
 @quiet_option
 @handle_errors
-def align(data, spec, weights, out_path, alignment, json_path, report_path, scoring, extraction, quiet):
+def align(data, spec, weights, out_path, alignment, require_improvement, json_path, report_path, scoring,
+          extraction, quiet):
     """Briefly retrain the encoder's last block(s) so clutter no longer separates its features.
 
     Gradient-reversal adversarial training (Ganin & Lempitsky 2015) against a small domain
     discriminator, with an anchor that keeps clean features close to the original encoder's,
-    a task head on clean labels, and paired and mean-matching terms that pull cluttered
-    features onto the clean ones. A held-out share of the pairs is never trained on;
-    before/after are measured there. Ctrl-C keeps the best checkpoint so far.
+    task heads on the labelled tasks the encoder carries, and paired and mean-matching terms
+    that pull cluttered features onto the clean ones. A held-out share of the pairs is never
+    trained on; before/after are measured there, and the checkpoint is written only when the
+    aligned state beats the original there. Ctrl-C keeps the best checkpoint so far.
     """
     from .. import pipeline
     from ..align import AlignmentInterrupted
+    from ..align.outcome import settle
 
     if spec is None:
         raise click.UsageError("give --encoder SPEC")
@@ -51,5 +84,34 @@ def align(data, spec, weights, out_path, alignment, json_path, report_path, scor
     except AlignmentInterrupted as exc:
         say(f"{exc} (load it as checkpoint:{exc.checkpoint})", err=True)
         sys.exit(130)
+    result = settle(result)
     write_result_outputs(result, json_path=json_path, report_path=report_path)
-    print_alignment(result)
+    _print_outcome(result)
+    if require_improvement and not result["alignment"]["improved"]:
+        sys.exit(EXIT_NOT_IMPROVED)
+
+
+def _print_outcome(result) -> None:
+    al = result["alignment"]
+    if al.get("cut_short"):
+        say(f"cut short: {al['stopped_because']}; rerun without --minutes (or with more) for the full "
+            f"{al['settings']['steps']} steps")
+    if al["improved"]:
+        print_alignment(result)
+        say(f"improved: {al['outcome']}")
+        return
+    say(f"not improved: {al['outcome']}")
+    say("the original encoder is kept: it is not presented as aligned")
+    _print_before_after(al)
+
+
+def _print_before_after(al) -> None:
+    from .. import SAFETY_CAUTION
+    from ..results import metric_value
+
+    for label, group, key in (("domain accuracy", "domain_classifier", "accuracy"),
+                              ("relative drift", "paired_drift", "relative_drift")):
+        before, after = metric_value(al["before"], group, key), metric_value(al["after"], group, key)
+        shown = [("n/a" if v is None else f"{v:.3f}") for v in (before, after)]
+        say(f"  {label:<16} original {shown[0]}  tried {shown[1]}")
+    say(f"note: {SAFETY_CAUTION}")

@@ -1,0 +1,92 @@
+"""The honest outcome: did the kept state beat the original encoder on the held-out pairs?
+
+The held-out pairs are never trained on nor used to choose the kept state; they only judge
+it once training is over. A kept state that is not better than the original there is not
+presented as an aligned encoder: no checkpoint is written and ``improved`` is false.
+"""
+
+from __future__ import annotations
+
+import math
+
+from .monitor import _Z_95, _allowed_fall
+
+
+def _value(metrics: dict, group: str, key: str) -> float:
+    value = (metrics.get(group) or {}).get(key)
+    return math.nan if value is None else float(value)
+
+
+def judge(before: dict, after: dict, carried: list[str], margin: float, n_pairs: int) -> tuple[bool, str]:
+    """Whether ``after`` beats ``before`` on the held-out pairs, and why (one plain line).
+
+    Better means: the relative paired drift fell, the domain classifier's accuracy did not
+    rise beyond sampling noise (1.96 standard errors of a difference of two accuracies on
+    ``n_pairs`` pairs per view, two-proportion z, common practice), and every task the
+    encoder carries kept its clean probe within the guard's
+    allowance (``margin`` relative, or sampling noise of an accuracy on ``n_pairs``
+    pairs; see :func:`invariance.align.monitor._allowed_fall`).
+
+    Parameters
+    ----------
+    before, after : dict
+        Held-out metrics (``invariance score``'s ``metrics``) of the original and the kept state.
+    carried : list of str
+        Tasks the original encoder carries.
+    margin : float
+        The guard margin.
+    n_pairs : int
+        Held-out pairs.
+
+    Returns
+    -------
+    improved : bool
+    reason : str
+    """
+    drift0 = _value(before, "paired_drift", "relative_drift")
+    drift1 = _value(after, "paired_drift", "relative_drift")
+    acc0, acc1 = _value(before, "domain_classifier", "accuracy"), _value(after, "domain_classifier", "accuracy")
+    if not drift1 < drift0:
+        return False, f"held-out relative drift did not fall ({drift0:.3f} -> {drift1:.3f})"
+    # the domain classifier sees both views of each held-out pair: 2 * n_pairs images
+    noise = _Z_95 * math.sqrt(2.0 * acc0 * (1.0 - acc0) / (2 * n_pairs)) if math.isfinite(acc0) else 0.0
+    if not acc1 - acc0 <= noise:  # NaN compares False: an accuracy that cannot be computed fails
+        return False, f"held-out domain accuracy rose ({acc0:.3f} -> {acc1:.3f})"
+    for task in carried:
+        p0, p1 = (before.get("probe") or {}).get(task, {}), (after.get("probe") or {}).get(task, {})
+        if "clean" not in p0 or "clean" not in p1:
+            continue
+        kind = p0.get("kind", "classification")
+        if p0["clean"] - p1["clean"] > _allowed_fall(p0["clean"], kind, margin, n_pairs):
+            return False, f"held-out clean probe {task!r} fell ({p0['clean']:.3f} -> {p1['clean']:.3f})"
+    return True, (f"held-out relative drift {drift0:.3f} -> {drift1:.3f}, domain accuracy {acc0:.3f} -> {acc1:.3f}, "
+                  "carried clean probes kept")
+
+
+def settle(result: dict) -> dict:
+    """A pipeline result whose alignment did not improve, made to describe the original encoder.
+
+    ``invariance.pipeline.align_dataset`` names the checkpoint as the result's encoder and
+    the kept state's held-out metrics as its metrics; when ``alignment.improved`` is false
+    no checkpoint exists, so the result names the original encoder (marked "not
+    improved") and carries the original's held-out metrics. An improved result is
+    returned as it is.
+
+    Parameters
+    ----------
+    result : dict
+        From :func:`invariance.pipeline.align_dataset`.
+
+    Returns
+    -------
+    dict
+        The same object, changed in place when not improved.
+    """
+    alignment = result.get("alignment") or {}
+    if alignment.get("improved", True):
+        return result
+    encoder = result.setdefault("encoder", {})
+    source = encoder.get("source_spec", encoder.get("spec"))
+    encoder.update(spec=source, name=f"{source} (alignment did not improve it; original kept)")
+    result["metrics"] = alignment["before"]
+    return result
