@@ -234,8 +234,7 @@ def bench_align_step(image_size: int = 128, batch_size: int = 32, steps: int = 5
     import torch
     from torch.nn import functional as F
 
-    from .align import (domain_loss, make_discriminator, mean_matching_loss, paired_loss, paired_variance,
-                        split_module, whitening)
+    from .align import domain_loss, make_discriminator, mean_matching_loss, paired_drift_loss, split_module, whitening
     from .encoders import load_encoder
 
     torch.manual_seed(0)
@@ -249,14 +248,14 @@ def bench_align_step(image_size: int = 128, batch_size: int = 32, steps: int = 5
         split_error = float((anchor - module(x)).abs().max())
     disc = make_discriminator(anchor.shape[1], torch.Generator().manual_seed(0))
     half = batch_size // 2
-    white, variance = whitening(anchor), paired_variance(anchor)
+    white = whitening(anchor)
     tail_opt = torch.optim.Adam([*tail.parameters(), *disc.parameters()], lr=1e-5)
     whole_opt = torch.optim.Adam([*module.parameters(), *disc.parameters()], lr=1e-5)
 
     def step(optimizer, features):
         clean, cluttered = features[:half], features[half : 2 * half]
         loss = (domain_loss(disc, clean, cluttered, 1.0)[0] + F.mse_loss(features, anchor)
-                + paired_loss(clean, cluttered, variance)
+                + paired_drift_loss(clean, cluttered)
                 + mean_matching_loss(clean, cluttered, white))
         optimizer.zero_grad(set_to_none=True)
         loss.backward()

@@ -361,7 +361,10 @@ def align_dataset(data, spec: str, *, out, weights=None, alignment: AlignmentOpt
     -------
     dict
         A result whose ``metrics`` are the aligned encoder's on the held-out pairs, with
-        ``alignment`` holding before/after, the settings and the training curves.
+        ``alignment`` holding before/after, the settings and the training curves. When
+        the alignment did not improve the encoder on the held-out pairs
+        (``alignment.improved`` false), no checkpoint exists and the result describes the
+        original encoder with its held-out metrics.
     """
     from .align import align_encoder
 
@@ -375,7 +378,9 @@ def align_dataset(data, spec: str, *, out, weights=None, alignment: AlignmentOpt
     outcome = align_encoder(pairs, encoder, out=out, options=alignment, scoring=scoring, extraction=extraction,
                             progress=progress)
     elapsed = time.perf_counter() - start
-    return add_caution({
+    from .align.outcome import settle
+
+    return settle(add_caution({
         "schema": RESULT_SCHEMA,
         "encoder": {**encoder.describe(), "name": f"{spec} aligned", "spec": f"checkpoint:{out}", "source_spec": spec,
                     "layer": DEFAULT_LAYER},
@@ -383,7 +388,7 @@ def align_dataset(data, spec: str, *, out, weights=None, alignment: AlignmentOpt
         "metrics": outcome["after"],
         "alignment": outcome,
         "environment": environment_info(seed=scoring.seed, device=str(encoder.device), timings={"align": elapsed}),
-    })
+    }))
 
 
 def _unpaired_folder(data) -> bool:

@@ -127,10 +127,14 @@ def print_alignment(result) -> None:
     from ..results import metric_value
 
     al = result["alignment"]
-    say(f"aligned checkpoint: {al['checkpoint']} (load it as checkpoint:{al['checkpoint']})")
+    if al.get("checkpoint"):
+        say(f"aligned checkpoint: {al['checkpoint']} (load it as checkpoint:{al['checkpoint']})")
+    else:
+        say(f"not improved: {al.get('outcome') or 'no kept state beat the original on the held-out pairs'}; "
+            "no checkpoint was written")
     say(f"stopped: {al.get('stopped_because', 'step limit')}; kept the state of step {al.get('best_step', '?')} "
         f"(step 0 = the original encoder); measured on {al['held_out_pairs']} held-out pairs")
-    if al.get("improved") is False:
+    if al.get("improved") is False and al.get("checkpoint"):
         say("note: the alignment did not improve on the original encoder on the held-out pairs; "
             "the checkpoint is not an aligned copy in any useful sense")
     if al.get("cut_short"):
