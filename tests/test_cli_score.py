@@ -296,3 +296,23 @@ def test_explain_worst_stores_drift_maps_and_the_report_overlays_them(tmp_path, 
     assert report.read_text().count('alt="drift map of') == 2
     res = _run(["score", "--features", str(tmp_path / "x.npy"), str(tmp_path / "y.npy"), "--explain-worst", "2"])
     assert res.exit_code == 2 and "--explain-worst needs paired images" in res.output
+
+
+def test_compare_ranks_features_directories_like_the_scores_of_each(tmp_path, scene_set):
+    dirs = []
+    for spec in ("python:invariance.zoo:workbench_cnn", "python:invariance.zoo:clean_only_encoder"):
+        folder = tmp_path / spec.rsplit(":", 1)[1]
+        res = _run(["extract", str(scene_set), "--encoder", spec, "--image-size", "32", "--out", str(folder), "--quiet"])
+        assert res.exit_code == 0, res.output
+        dirs += ["--features-dir", str(folder)]
+    out, single = tmp_path / "cmp.json", tmp_path / "one.json"
+    res = _run(["compare", *dirs, "--labels", str(scene_set / "labels.csv"), "--permutations", "20", "--quiet",
+                "--name", "untrained", "--name", "clean-only", "--json", str(out)])
+    assert res.exit_code == 0, res.output
+    comparison = json.loads(out.read_text())
+    assert [r["encoder"]["name"] for r in comparison["results"]] == ["untrained", "clean-only"]
+    res = _run(["score", "--features-dir", dirs[1], "--labels", str(scene_set / "labels.csv"), "--permutations", "20",
+                "--quiet", "--json", str(single)])
+    assert comparison["results"][0]["metrics"] == json.loads(single.read_text())["metrics"]
+    res = _run(["compare", str(scene_set), *dirs])
+    assert res.exit_code == 2 and "--features-dir replaces DATA" in res.output

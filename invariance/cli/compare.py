@@ -23,7 +23,7 @@ def _paired(values, specs, flag: str) -> list:
 
 
 @click.command(epilog=EXIT_CODES_HELP)
-@click.argument("data", type=click.Path(path_type=Path))
+@click.argument("data", required=False, type=click.Path(path_type=Path))
 @click.option("--encoder", "specs", multiple=True, callback=check_spec,
               help=ENCODER_HELP + " Repeat for each encoder.")
 @click.option("--weights", "weights", multiple=True, type=click.Path(dir_okay=False, path_type=Path),
@@ -33,13 +33,19 @@ def _paired(values, specs, flag: str) -> list:
 @click.option("--encoders", "encoders_toml", type=click.Path(dir_okay=False, path_type=Path),
               help="TOML file with [[encoder]] tables (spec, weights, layers, name, image_size).")
 @click.option("--layer", "layers", multiple=True, help="Graph node to tap in every encoder given by --encoder.")
+@click.option("--features-dir", "feature_dirs", multiple=True, type=click.Path(file_okay=False, path_type=Path),
+              metavar="DIR", help="Instead of DATA and encoders: features directories written by `invariance "
+                                  "extract` (repeat; one per encoder), scored with the same folds and permutations.")
+@click.option("--labels", "labels_csv", type=click.Path(dir_okay=False, path_type=Path),
+              help="With --features-dir: labels.csv whose first column names the pairs.")
 @click.option("--json", "json_path", type=click.Path(dir_okay=False, path_type=Path), help="Write the comparison JSON here.")
 @report_option
 @scoring_options()
 @extraction_options
 @quiet_option
 @handle_errors
-def compare(data, specs, weights, names, encoders_toml, layers, json_path, report_path, scoring, extraction, quiet):
+def compare(data, specs, weights, names, encoders_toml, layers, feature_dirs, labels_csv, json_path, report_path,
+            scoring, extraction, quiet):
     """Score several encoders on the same pairs, folds and permutations, and rank them.
 
     Encoders are ranked by the task information their features keep on cluttered views
@@ -52,6 +58,16 @@ def compare(data, specs, weights, names, encoders_toml, layers, json_path, repor
     from ..encoder_list import read_encoder_list
     from ..options import EncoderEntry
 
+    if feature_dirs:
+        if data is not None or specs or encoders_toml:
+            raise click.UsageError("--features-dir replaces DATA and --encoder/--encoders; give one or the other")
+        comparison = _compare_feature_dirs(feature_dirs, _paired(names, feature_dirs, "--name"), layers, labels_csv,
+                                           scoring, json_path, report_path)
+        write_comparison_outputs(comparison, json_path=json_path, report_path=report_path, tsne=scoring.tsne)
+        print_ranking(comparison)
+        return
+    if data is None:
+        raise click.UsageError("give DATA and encoders, or --features-dir DIR (repeat)")
     weights, names = _paired(weights, specs, "--weights"), _paired(names, specs, "--name")
     entries = [EncoderEntry(s, weights=w, layers=tuple(layers) or None, name=n)
                for s, w, n in zip(specs, weights, names)]
@@ -64,3 +80,21 @@ def compare(data, specs, weights, names, encoders_toml, layers, json_path, repor
     comparison = pipeline.compare_encoders(data, entries, extraction=extraction, scoring=scoring, progress=not quiet)
     write_comparison_outputs(comparison, json_path=json_path, report_path=report_path, tsne=scoring.tsne)
     print_ranking(comparison)
+
+
+def _compare_feature_dirs(folders, names, layers, labels_csv, scoring, json_path, report_path) -> dict:
+    """A comparison of features directories, each scored like `score --features-dir`."""
+    from ..results import add_caution, make_comparison
+    from .score import _score_features_dir
+
+    if len(layers) > 1:
+        raise click.UsageError("--features-dir scores one layer at a time; give at most one --layer")
+    check_outputs({"--json": json_path, "--report": report_path},
+                  files=[labels_csv, *(Path(f) / "manifest.json" for f in folders)])
+    results = []
+    for folder, name in zip(folders, names):
+        result = _score_features_dir(folder, None, layers[0] if layers else None, labels_csv, scoring)
+        if name:
+            result["encoder"]["name"] = name
+        results.append(result)
+    return add_caution(make_comparison(results))
