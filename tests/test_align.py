@@ -889,3 +889,18 @@ def test_minutes_cut_training_short_and_say_so(small_set, random_zoo_encoder, tm
     assert result["cut_short"] is True and result["steps_run"] < 10_000
     assert any("cut short" in line for line in lines)
     assert any("should take about" in line for line in lines)
+
+
+def test_splits_keep_every_episode_on_one_side():
+    # Frames of one episode are strongly correlated: an episode split across training and
+    # held-out pairs would let the alignment be judged on what it trained on (docs/sources.md).
+    from invariance.align.splits import split_pairs, validation_slice
+
+    groups = np.repeat([f"episode_{i:02d}" for i in range(20)], 10)
+    align_idx, held_idx = split_pairs(200, held_out_fraction=0.3, seed=3, groups=groups)
+    assert not set(groups[align_idx]) & set(groups[held_idx])
+    assert len(held_idx) >= 60 and sorted([*align_idx, *held_idx]) == list(range(200))
+    train_idx, val_idx = validation_slice(align_idx, seed=3, groups=groups)
+    assert not set(groups[train_idx]) & set(groups[val_idx]) and len(val_idx) > 0
+    ungrouped = split_pairs(200, held_out_fraction=0.3, seed=3)
+    assert len(ungrouped[1]) == 60  # without episodes, each pair is its own unit as before

@@ -13,7 +13,7 @@ import torch
 from .._io import check_writable
 from ..encoders import Encoder
 from ..errors import InvalidParameter
-from ..data import label_columns
+from ..data import label_columns, pair_groups
 from ..options import AlignmentOptions, ExtractionOptions, ScoringOptions, options_or_default
 from ..progress import as_reporter
 from .heads import _build_tasks, _check_labels, _standardiser
@@ -143,9 +143,10 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
     started = time.perf_counter()
     reporter, out, seed = as_reporter(progress), check_writable(out), scoring.seed
     _check_labels(pairs)  # before any work: a mismatch is the user's data, not a crash later
+    groups = pair_groups(pairs)  # episodes stay whole on one side of every split
     align_idx, held_idx = split_pairs(len(pairs), held_out_fraction=options.held_out_fraction, seed=seed,
-                                      folds=scoring.folds)
-    train_idx, val_idx = validation_slice(align_idx, seed=seed)
+                                      folds=scoring.folds, groups=groups)
+    train_idx, val_idx = validation_slice(align_idx, seed=seed, groups=groups)
     aligned, run, node, verdicts = _prepare(pairs, encoder, options.train_from, (align_idx, train_idx, val_idx),
                                             extraction.batch_size, seed)
     _announce(reporter, node, run, verdicts, options)

@@ -54,8 +54,24 @@ def _minimum_pairs(held_out_fraction: float, folds: int = _DEFAULT_FOLDS) -> int
         n += 1
 
 
+def _grouped_cut(rng, groups, n_first: int) -> tuple[np.ndarray, np.ndarray]:
+    """Positions in a seeded order of whole groups: the first groups holding at least
+    ``n_first`` rows, and the rest. With ``groups`` None every row is its own group."""
+    groups = np.asarray(groups)
+    _, inverse = np.unique(groups, return_inverse=True)
+    group_order = rng.permutation(inverse.max() + 1)
+    place = np.empty_like(group_order)
+    place[group_order] = np.arange(group_order.size)
+    rank = place[inverse]
+    order = np.argsort(rank, kind="stable")  # rows of one group stay adjacent
+    rows_before = np.cumsum(np.bincount(rank))  # rows in the first k + 1 groups
+    k = int(np.searchsorted(rows_before, n_first))  # the first k + 1 groups hold >= n_first rows
+    cut = int(rows_before[k]) if k < rows_before.size else len(order)
+    return order[:cut], order[cut:]
+
+
 def split_pairs(n_pairs: int, *, held_out_fraction: float = DEFAULT_HELD_OUT_FRACTION, seed: int = 0,
-                folds: int = _DEFAULT_FOLDS) -> tuple[np.ndarray, np.ndarray]:
+                folds: int = _DEFAULT_FOLDS, groups=None) -> tuple[np.ndarray, np.ndarray]:
     """Split pair indices into alignment pairs and held-out pairs, seeded.
 
     Parameters
@@ -68,6 +84,10 @@ def split_pairs(n_pairs: int, *, held_out_fraction: float = DEFAULT_HELD_OUT_FRA
         Seed of the permutation.
     folds : int, default=5
         Folds of the held-out domain classifier; the held-out pairs must fill them.
+    groups : array-like of shape (n_pairs,), optional
+        Group (episode) of each pair: whole groups go to one side, the held-out side
+        taking groups until it holds at least its share of pairs, so frames of one
+        episode never train the alignment and judge it.
 
     Returns
     -------
@@ -88,12 +108,18 @@ def split_pairs(n_pairs: int, *, held_out_fraction: float = DEFAULT_HELD_OUT_FRA
             f"alignment needs at least {minimum} pairs with held_out_fraction={held_out_fraction} "
             f"(found {n_pairs}); add pairs to the data set (invariance scenes OUT --pairs N makes more)"
         )
-    order = np.random.default_rng(seed).permutation(int(n_pairs))
     held_out, _, _ = _split_sizes(int(n_pairs), held_out_fraction)
+    if groups is not None:
+        held, align = _grouped_cut(np.random.default_rng(seed), groups, held_out)
+        if align.size == 0:
+            raise InvarianceError(f"the {len(set(np.asarray(groups).tolist()))} episodes cannot be split into "
+                                  "alignment and held-out episodes; add episodes")
+        return np.sort(align), np.sort(held)
+    order = np.random.default_rng(seed).permutation(int(n_pairs))
     return np.sort(order[held_out:]), np.sort(order[:held_out])
 
 
-def validation_slice(align_idx, *, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
+def validation_slice(align_idx, *, seed: int = 0, groups=None) -> tuple[np.ndarray, np.ndarray]:
     """Split alignment pairs into training pairs and a validation slice for early stopping.
 
     Parameters
@@ -116,5 +142,12 @@ def validation_slice(align_idx, *, seed: int = 0) -> tuple[np.ndarray, np.ndarra
             f"{len(align_idx)} alignment pairs are too few; at least {_MIN_TRAIN + _MIN_VALIDATION} are needed"
         )
     # A seed stream separate from split_pairs', so the slice is not a prefix of that order.
-    order = np.random.default_rng([check_seed(seed), 1]).permutation(len(align_idx))
+    rng = np.random.default_rng([check_seed(seed), 1])
+    if groups is not None:  # whole episodes, as in split_pairs
+        val, train = _grouped_cut(rng, np.asarray(groups)[align_idx], n_val)
+        if len(train) >= _MIN_TRAIN:
+            return np.sort(align_idx[train]), np.sort(align_idx[val])
+        raise InvarianceError(f"{len(align_idx)} alignment pairs in too few episodes to keep a validation "
+                              "episode apart; add episodes")
+    order = rng.permutation(len(align_idx))
     return np.sort(align_idx[order[n_val:]]), np.sort(align_idx[order[:n_val]])
