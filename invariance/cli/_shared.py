@@ -233,12 +233,13 @@ def gate_options(func):
 
 _ALIGNMENT_HELP = {
     "steps": "Training steps (the schedules follow them, so a run is reproducible on any machine).",
-    "minutes": "Wall-clock limit for training; it only stops training early [default: none].",
-    "train_from": "First top-level block to train (earlier blocks are frozen and cached) "
-                  "[default: the last block with parameters].",
+    "minutes": "Wall-clock limit for the whole command (caching, training, held-out scoring); training "
+               "stops early to fit it and the result says it was cut short [default: none].",
+    "train_from": "First stage to train: a top-level block or a dotted submodule path (earlier stages are "
+                  "frozen and cached) [default: the last stages holding half the parameters].",
     "held_out_fraction": "Fraction of pairs never trained on; before/after are measured on them (0.05-0.8).",
     "anchor_weight": "Weight of the clean-feature anchor loss.",
-    "paired_weight": "Weight of the paired consistency loss.",
+    "paired_weight": "Weight of the paired term (the batch's relative cosine drift, as score reports it).",
     "mean_weight": "Weight of the mean-matching loss (whitened distance between the clean and cluttered "
                    "mean features).",
     "task_weight": "Weight of the task heads on clean labels.",

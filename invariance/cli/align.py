@@ -3,43 +3,19 @@
 from __future__ import annotations
 
 import sys
-from dataclasses import fields, replace
+from dataclasses import replace
 from pathlib import Path
 
 import click
 
-from ..options import OBJECTIVES, AlignmentOptions
 from ._print import print_alignment
-from ._shared import (_ALIGNMENT_HELP, EXIT_CODES_HELP, _option_group, check_outputs, encoder_option,
-                      extraction_options, flag_for, handle_errors, json_option, quiet_option, report_option,
-                      say, scoring_options, weights_option, write_result_outputs)
+from ._shared import (EXIT_CODES_HELP, alignment_options, check_outputs, encoder_option, extraction_options,
+                      handle_errors, json_option, quiet_option, report_option, say, scoring_options, weights_option,
+                      write_result_outputs)
 
-_HELP = {
-    **_ALIGNMENT_HELP,
-    "minutes": "Wall-clock limit for the whole command (caching, training, held-out scoring); training "
-               "stops early to fit it and the result says it was cut short [default: none].",
-    "train_from": "First stage to train: a top-level block or a dotted submodule path (earlier stages are "
-                  "frozen and cached) [default: the last stages holding half the parameters].",
-    "objective": "combined (gradient reversal + paired and mean-matching terms), dann (gradient reversal "
-                 "only) or paired (paired and mean-matching terms only).",
-}
 # Exit status when --require-improvement is given and the alignment did not improve the
 # encoder: the code of a failed gate (docs/design.md).
 EXIT_NOT_IMPROVED = 3
-
-
-def _alignment_flags(func):
-    """One flag per AlignmentOptions field except the batch size (--batch-size sets it)."""
-    d = AlignmentOptions()
-    options = []
-    for f in fields(AlignmentOptions):
-        if f.name == "batch_size":
-            continue
-        value = getattr(d, f.name)
-        kind = {"steps": int, "train_from": str, "objective": click.Choice(OBJECTIVES)}.get(f.name, float)
-        options.append((f.name, click.option(flag_for(f.name), f.name, type=kind, default=value,
-                                             show_default=value is not None, help=_HELP[f.name])))
-    return _option_group("alignment", options, lambda values: AlignmentOptions(**values))(func)
 
 
 @click.command(epilog=EXIT_CODES_HELP)
@@ -48,7 +24,7 @@ def _alignment_flags(func):
 @weights_option
 @click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="Checkpoint to write when the alignment improves the encoder (load it as checkpoint:FILE).")
-@_alignment_flags
+@alignment_options
 @click.option("--require-improvement", is_flag=True,
               help="Exit 3 when the aligned state does not beat the original on the held-out pairs.")
 @json_option
