@@ -12,6 +12,7 @@ import torch
 import torchvision
 from PIL import Image
 
+from conftest import random_image_pairs
 from invariance.data import PairSet
 from invariance.encoders import cache as feature_cache
 from invariance.encoders import extract_features, load_encoder
@@ -26,16 +27,7 @@ pytestmark = pytest.mark.usefixtures("one_torch_thread")
 
 @pytest.fixture
 def pairs(tmp_path):
-    rng = np.random.default_rng(0)
-    paths = {}
-    for view in ("clean", "cluttered"):
-        (tmp_path / "data" / view).mkdir(parents=True)
-        paths[view] = []
-        for i in range(4):
-            path = tmp_path / "data" / view / f"s{i}.png"
-            Image.fromarray(rng.integers(0, 256, (36, 36, 3), dtype=np.uint8)).save(path)
-            paths[view].append(path)
-    return PairSet.from_paths(paths["clean"], paths["cluttered"])
+    return random_image_pairs(tmp_path, 4)
 
 
 @pytest.fixture

@@ -8,7 +8,7 @@ import sys
 
 import numpy as np
 import pytest
-from PIL import Image
+from conftest import random_image_pairs
 
 from invariance import feature_index
 from invariance.data import PairSet
@@ -19,16 +19,7 @@ SIZE = 32
 
 @pytest.fixture
 def pairs(tmp_path):
-    rng = np.random.default_rng(0)
-    paths = {}
-    for view in ("clean", "cluttered"):
-        (tmp_path / "data" / view).mkdir(parents=True)
-        paths[view] = []
-        for i in range(3):
-            path = tmp_path / "data" / view / f"s{i}.png"
-            Image.fromarray(rng.integers(0, 256, (36, 36, 3), dtype=np.uint8)).save(path)
-            paths[view].append(path)
-    return PairSet.from_paths(paths["clean"], paths["cluttered"])
+    return random_image_pairs(tmp_path, 3)
 
 
 def _extract_and_remember(cache, pairs, layers, identity, **load):
