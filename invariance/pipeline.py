@@ -158,27 +158,34 @@ def score_dataset(data, spec: str, *, weights=None, layers: Sequence[str] | None
         result["output_drift"] = policy_output_drift(pairs, encoder, output_tolerance,
                                                      batch_size=extraction.batch_size, progress=progress)
     if explain_worst:
-        result["drift_maps"] = _drift_maps(pairs, encoder, explain_worst, layer_list[-1], extraction, progress)
+        result["drift_maps"] = _drift_maps(pairs, encoder, result.get("pairs") or [], explain_worst, layer_list[-1],
+                                           progress)
     result["encoder"] = {**description, "name": name or spec, "layer": layer_list[-1]}
     result["dataset"] = _dataset_info(pairs)
     result["environment"] = environment_info(seed=scoring.seed, device=description.get("device"), timings=timings)
     return add_caution(result)
 
 
-def _drift_maps(pairs, encoder, worst: int, layer: str, extraction, progress) -> dict:
-    """Occlusion maps of the ``worst`` pairs, kept as per-patch drops (small enough for the JSON)."""
+def _drift_maps(pairs, encoder, per_pair: list, worst: int, layer: str, progress) -> dict:
+    """Occlusion maps of the ``worst`` pairs, kept as per-patch drops (small enough for the JSON).
+
+    The pairs are ranked by the relative drift the scoring just measured (``per_pair``, the
+    result's ``pairs``), so no feature is extracted a second time to rank them.
+    """
     from PIL import Image
 
     from .explain import explain_pairs
 
-    explained = explain_pairs(pairs, encoder, worst=min(worst, len(pairs)), method="occlusion",
-                              layer=None if layer == DEFAULT_LAYER else layer, extraction=extraction,
+    ranked = sorted((p for p in per_pair if p.get("drift") is not None), key=lambda p: -p["drift"])[:worst]
+    drift_of = {p["name"]: p["drift"] for p in ranked}
+    explained = explain_pairs(pairs, encoder, names=[p["name"] for p in ranked], method="occlusion",
+                              layer=None if layer == DEFAULT_LAYER else layer,
                               progress=progress)
     out = []
     for entry in explained["pairs"]:
         with Image.open(pairs.cluttered[entry["index"]]) as image:
             width, height = image.size
-        out.append({"name": entry["name"], "relative_drift": entry.get("relative_drift"),
+        out.append({"name": entry["name"], "relative_drift": drift_of.get(entry["name"]),
                     "drift": entry.get("drift"), "height": height, "width": width,
                     "drops": [[float(v) for v in row] for row in entry["drops"]]})
     return {"method": "occlusion", "patch": explained.get("patch"), "layer": layer, "pairs": out}

@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import InvarianceError
-from ..metrics.domain import MIN_PAIRS_PER_FOLD
+from ..metrics.domain import MIN_PAIRS_PER_FOLD, check_groups
 from ..options import DEFAULT_HELD_OUT_FRACTION, ScoringOptions
 from ..validation import check_float, check_int, check_seed
 
@@ -57,8 +57,7 @@ def _minimum_pairs(held_out_fraction: float, folds: int = _DEFAULT_FOLDS) -> int
 def _grouped_cut(rng, groups, n_first: int) -> tuple[np.ndarray, np.ndarray]:
     """Positions in a seeded order of whole groups: the first groups holding at least
     ``n_first`` rows, and the rest. With ``groups`` None every row is its own group."""
-    groups = np.asarray(groups)
-    _, inverse = np.unique(groups, return_inverse=True)
+    inverse = check_groups(groups, len(groups))  # the metrics' own group codes (0..G-1)
     group_order = rng.permutation(inverse.max() + 1)
     place = np.empty_like(group_order)
     place[group_order] = np.arange(group_order.size)
@@ -112,7 +111,7 @@ def split_pairs(n_pairs: int, *, held_out_fraction: float = DEFAULT_HELD_OUT_FRA
     if groups is not None:
         held, align = _grouped_cut(np.random.default_rng(seed), groups, held_out)
         if align.size == 0:
-            raise InvarianceError(f"the {len(set(np.asarray(groups).tolist()))} episodes cannot be split into "
+            raise InvarianceError(f"the {len(np.unique(np.asarray(groups).astype(str)))} episodes cannot be split into "
                                   "alignment and held-out episodes; add episodes")
         return np.sort(align), np.sort(held)
     order = np.random.default_rng(seed).permutation(int(n_pairs))
