@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import contextlib
 import errno
+import hashlib
 import json
 import os
 import shutil
@@ -29,6 +30,15 @@ def _json_default(obj):
     if isinstance(obj, Path):
         return str(obj)
     raise TypeError(f"not JSON serialisable: {type(obj).__name__}")
+
+
+def file_sha256(path) -> str:
+    """SHA-256 of a file's bytes (``sha256sum`` gives the same), read in 1 MiB chunks."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
 
 
 def dumps_json(data) -> str:

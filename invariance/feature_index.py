@@ -23,16 +23,15 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
 from importlib import metadata
 from pathlib import Path
 
 from . import __version__
-from ._io import atomic_write_json
+from ._io import atomic_write_json, file_sha256
 
 RECORD_FORMAT = "invariance.request/1"
 _PACKAGE = Path(__file__).resolve().parent
-_ENCODER_CODE_CACHE: list[str] = []
+_PACKAGE_CODE_SHA256: list[str] = []
 
 
 def request_identity(spec: str, *, weights=None, image_size=None, trusted_code=()) -> dict | None:
@@ -61,7 +60,7 @@ def request_identity(spec: str, *, weights=None, image_size=None, trusted_code=(
     if weights is not None:
         files.append(Path(weights))
     try:
-        hashes = [_sha256(path) for path in files]
+        hashes = [file_sha256(path) for path in files]
     except OSError:
         return None
     return {
@@ -71,7 +70,7 @@ def request_identity(spec: str, *, weights=None, image_size=None, trusted_code=(
         "image_size": image_size,
         "trusted_code": sorted(str(t) for t in trusted_code),
         "invariance": __version__,
-        "encoder_code": _encoder_code_sha256(),
+        "encoder_code": package_code_sha256(),
         "torch": _version("torch"),
         "torchvision": _version("torchvision"),
     }
@@ -166,25 +165,17 @@ def _named_files(spec: str) -> list[Path] | None:
     return None
 
 
-def _encoder_code_sha256() -> str:
+def package_code_sha256() -> str:
     """SHA-256 over this package's sources, computed once per process."""
-    if not _ENCODER_CODE_CACHE:
+    if not _PACKAGE_CODE_SHA256:
         digest = hashlib.sha256()
         for path in sorted(_PACKAGE.rglob("*.py")):
             digest.update(str(path.relative_to(_PACKAGE)).encode("utf-8") + b"\0")
             digest.update(path.read_bytes())
         for path in sorted((_PACKAGE / "weights").glob("*.pt")):
-            digest.update(path.name.encode("utf-8") + b"\0" + _sha256(path).encode("ascii"))
-        _ENCODER_CODE_CACHE.append(digest.hexdigest())
-    return _ENCODER_CODE_CACHE[0]
-
-
-def _sha256(path) -> str:
-    digest = hashlib.sha256()
-    with open(os.fspath(path), "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
+            digest.update(path.name.encode("utf-8") + b"\0" + file_sha256(path).encode("ascii"))
+        _PACKAGE_CODE_SHA256.append(digest.hexdigest())
+    return _PACKAGE_CODE_SHA256[0]
 
 
 def _version(package: str) -> str | None:

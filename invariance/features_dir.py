@@ -33,7 +33,7 @@ from typing import Iterator
 
 import numpy as np
 
-from ._io import atomic_write_json, dumps_json, write_outputs_together
+from ._io import atomic_write_json, dumps_json, file_sha256, write_outputs_together
 from .errors import InvalidParameter, InvarianceError
 
 FORMAT = "invariance.features-dir/1"
@@ -46,17 +46,7 @@ MAX_JSON_BYTES = 2**30
 # Feature dtypes a shard may hold: what extraction writes (float32) and the compact forms.
 DTYPES = ("float16", "float32", "float64")
 # Bytes hashed per read when checking a shard (bounded memory whatever the shard size).
-_HASH_CHUNK = 16 * 2**20
 _IDENTITY_KEYS = ("spec", "weights_sha256", "state_sha256", "code_sha256", "preprocess", "layers")
-
-
-def file_sha256(path) -> str:
-    """SHA-256 of a file's bytes (``sha256sum`` gives the same), read in bounded chunks."""
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(_HASH_CHUNK), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def identity_sha256(identity: dict) -> str:

@@ -43,10 +43,10 @@ def score_key(features: dict, layers, *, tasks, factors, names, groups, options)
     -------
     str
     """
-    from .feature_index import _encoder_code_sha256
+    from .feature_index import package_code_sha256
 
     digest = hashlib.sha256()
-    header = {"format": FORMAT, "invariance": __version__, "code": _encoder_code_sha256(), "layers": list(layers),
+    header = {"format": FORMAT, "invariance": __version__, "code": package_code_sha256(), "layers": list(layers),
               "options": dataclasses.asdict(options)}
     digest.update(json.dumps(header, sort_keys=True, default=str).encode("utf-8"))
     for layer in layers:

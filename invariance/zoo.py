@@ -19,13 +19,13 @@ SHA-256 so a stale or damaged file is refused rather than silently used.
 
 from __future__ import annotations
 
-import hashlib
 from collections import OrderedDict
 from pathlib import Path
 
 import torch
 from torch import nn
 
+from ._io import file_sha256
 from .errors import InvarianceError
 
 IMAGE_SIZE = 64
@@ -104,16 +104,12 @@ def workbench_cnn(width: int = 32) -> nn.Sequential:
     return net
 
 
-def _file_sha256(path: Path) -> str:
-    return hashlib.sha256(path.read_bytes()).hexdigest()
-
-
 def _load_shipped(name: str) -> nn.Sequential:
     entry = SHIPPED_WEIGHTS[name]
     path = WEIGHTS_DIR / entry["file"]
     if not path.is_file():
         raise InvarianceError(f"{path}: shipped demo weights are missing; run `{RETRAIN_COMMAND}`")
-    if entry["sha256"] is not None and _file_sha256(path) != entry["sha256"]:
+    if entry["sha256"] is not None and file_sha256(path) != entry["sha256"]:
         raise InvarianceError(
             f"{path}: SHA-256 differs from invariance.zoo.SHIPPED_WEIGHTS; reinstall the package "
             f"or run `{RETRAIN_COMMAND}` and update the table"

@@ -7,6 +7,7 @@ from pathlib import Path
 
 import torch
 
+from invariance._io import file_sha256 as _file_sha256
 from invariance.errors import InvarianceError
 
 from .messages import _first_line, _is_refused_load, _refused_load_reason
@@ -18,14 +19,6 @@ def _existing_file(value, what: str) -> Path:
     if not path.is_file():
         raise InvarianceError(f"{what}: file not found: {path}; check the path")
     return path
-
-
-def _file_sha256(path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def _state_sha256(module: torch.nn.Module) -> str:
