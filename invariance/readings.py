@@ -442,11 +442,9 @@ def _mmd_row(m: dict) -> Row:
 
 
 def _mmd_null(m: dict) -> str:
-    """How the MMD test's null was drawn: views swapped within pairs, or labels over whole groups."""
-    null = m.get("null")
-    if isinstance(null, str) and "pool" in null:
-        return "permutation of domain labels over whole groups"
-    return "within-pair permutation test"
+    """How the MMD test's null was drawn: views swapped within pairs, or (the unpaired test,
+    which records its ``null``) domain labels permuted over whole groups."""
+    return "permutation of domain labels over whole groups" if m.get("null") else "within-pair permutation test"
 
 
 def _drift_rows(m: dict) -> list[Row]:
