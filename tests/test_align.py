@@ -894,6 +894,8 @@ def test_minutes_cut_training_short_and_say_so(small_set, random_zoo_encoder, tm
 def test_splits_keep_every_episode_on_one_side():
     # Frames of one episode are strongly correlated: an episode split across training and
     # held-out pairs would let the alignment be judged on what it trained on (docs/sources.md).
+    # Grouped splitting as in scikit-learn's GroupShuffleSplit (common practice); the check
+    # is the defining property: no group on both sides, every pair on exactly one side.
     from invariance.align.splits import split_pairs, validation_slice
 
     groups = np.repeat([f"episode_{i:02d}" for i in range(20)], 10)
