@@ -120,7 +120,7 @@ def score_dataset(data, spec: str, *, weights=None, layers: Sequence[str] | None
         the output's own units (``output_drift``), with the share of pairs whose change
         exceeds this tolerance (see :func:`invariance.metrics.output_drift.output_drift`).
     explain_worst : int, default=0
-        Also store occlusion drift maps (per-patch drops, 16 px patches) of the pairs that
+        Also store occlusion drift maps (per-patch drops on a 16 x 16 grid) of the pairs that
         drift most, under ``drift_maps``; the report overlays them on the thumbnails.
 
     Returns
@@ -186,7 +186,7 @@ def _drift_maps(pairs, encoder, per_pair: list, worst: int, layer: str, progress
         with Image.open(pairs.cluttered[entry["index"]]) as image:
             width, height = image.size
         out.append({"name": entry["name"], "relative_drift": drift_of.get(entry["name"]),
-                    "drift": entry.get("drift"), "height": height, "width": width,
+                    "drift": entry.get("drift"), "height": height, "width": width, "patch": entry.get("patch"),
                     "drops": [[float(v) for v in row] for row in entry["drops"]]})
     return {"method": "occlusion", "patch": explained.get("patch"), "layer": layer, "pairs": out}
 

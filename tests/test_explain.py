@@ -17,7 +17,7 @@ from invariance.errors import InvalidParameter, InvarianceError
 from invariance.explain import (explain_pairs, gradient_map, occlusion_map, overlay_rgb, positive_mass_shares,
                                 spread_drops)
 from invariance.explain._common import _preprocess, _to_tensor
-from invariance.explain.occlusion import _grid, _RestoredBatches, _spread
+from invariance.explain.occlusion import _grid, _RestoredBatches, _spread, default_patch
 from invariance.data import discover_pairs
 from invariance.metrics.drift import paired_drift
 from invariance.scenes import FACTORS, clutter_masks, generate_scenes, pair_rng, render_pair
@@ -189,16 +189,19 @@ def _grid_ceiling(mask, patch):
 
 def test_maps_put_the_drift_on_the_distractors(encoder, capsys):
     """Distractors-only scenes, clean-only demo CNN: the share of positive map mass on the
-    generator's distractor pixels. Measured on 12 pairs (seed 5): occlusion 16 px 0.44 against
-    a grid ceiling of 0.43 (a 16 px patch is mostly bench around a ~20 px part, so no 16 px
-    map can reach 0.6); occlusion 8 px 0.66 (ceiling 0.64); gradient x input 0.97."""
-    shares = {"occlusion 16 px": [], "ceiling 16 px": [], "occlusion 8 px": [], "gradient": []}
+    generator's distractor pixels (issue target: at least 0.6). Measured on 12 pairs (seed 5):
+    occlusion with the default grid (8 px at 128 px) 0.66 (ceiling 0.64); occlusion 16 px 0.44
+    against a grid ceiling of 0.43 (a 16 px patch is mostly bench around a ~20 px part, so no
+    16 px map can reach 0.6: why the default grid is 16 x 16 patches, not 8 x 8); gradient x
+    input 0.97."""
+    assert default_patch(128, 128) == 8
+    shares = {"occlusion 16 px": [], "ceiling 16 px": [], "occlusion default": [], "gradient": []}
     for i in range(12):
         clean, cluttered, severity = _pair(5, i, factors=("distractors",))
         mask = clutter_masks(5, i, 128, severity)["distractors"]
-        for patch in (16, 8):
+        for key, patch in (("occlusion 16 px", 16), ("occlusion default", None)):
             result = occlusion_map(encoder, clean, cluttered, patch=patch)
-            shares[f"occlusion {patch} px"].append(positive_mass_shares(result["map"], {"d": mask})["d"])
+            shares[key].append(positive_mass_shares(result["map"], {"d": mask})["d"])
         shares["ceiling 16 px"].append(_grid_ceiling(mask, 16))
         gradient = gradient_map(encoder, clean, cluttered)["map"]
         shares["gradient"].append(positive_mass_shares(gradient, {"d": mask})["d"])
@@ -206,7 +209,7 @@ def test_maps_put_the_drift_on_the_distractors(encoder, capsys):
     with capsys.disabled():
         print("\nshare of positive drift-map mass on distractor pixels:",
               ", ".join(f"{k} {v:.3f}" for k, v in mean.items()))
-    assert mean["occlusion 8 px"] >= 0.6
+    assert mean["occlusion default"] >= 0.6
     assert mean["gradient"] >= 0.6
     # at 16 px the map is as concentrated on the distractors as the grid allows
     assert mean["occlusion 16 px"] >= 0.9 * mean["ceiling 16 px"]
@@ -245,9 +248,10 @@ def test_explain_command_writes_figures_maps_and_summary(encoder, scene_set, tmp
     saved = np.load(out / "01_scene_00003.npy", allow_pickle=False)
     pairs = discover_pairs(scene_set)
     clean, cluttered = (np.asarray(Image.open(p).convert("RGB")) for p in (pairs.clean[3], pairs.cluttered[3]))
-    direct = occlusion_map(encoder, clean, cluttered, patch=16)
+    direct = occlusion_map(encoder, clean, cluttered)  # the default grid: 8 px at 128 px
     np.testing.assert_allclose(saved, direct["map"], rtol=1e-6, atol=1e-9)
     entry = summary["pairs"][0]
+    assert summary["patch"] is None and entry["patch"] == 8
     severity = {f: int(pairs.labels.factors[f"factor_{f}"][3]) for f in FACTORS}
     masks = clutter_masks(4, 3, 128, severity)
     assert entry["shares"]["distractors"] == pytest.approx(

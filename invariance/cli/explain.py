@@ -23,8 +23,9 @@ from ._shared import (ENCODER_HELP, EXIT_CODES_HELP, check_outputs, check_spec, 
 @click.option("--method", type=click.Choice(["occlusion", "gradient"]), default="occlusion", show_default=True,
               help="occlusion: exact, restores each patch from the clean view; gradient: one backward pass, "
                    "first-order estimate.")
-@click.option("--patch", type=click.IntRange(1, 4096), default=16, show_default=True,
-              help="Occlusion patch side in image pixels (smaller: sharper map, more forward passes).")
+@click.option("--patch", type=click.IntRange(1, 4096), default=None,
+              help="Occlusion patch side in image pixels (smaller: sharper map, more forward passes) "
+                   "[default: the image's shorter side / 16, e.g. 8 px at 128 px: 256 patches].")
 @click.option("--layer", default=None, help="Graph node to compare at (see `invariance layers`) [default: output].")
 @click.option("--scene-seed", type=click.IntRange(0), default=None,
               help="For sets made by `invariance scenes --seed S`: split each map over the generator's "

@@ -48,6 +48,7 @@ def _summary_entry(entry: dict, stem: str) -> dict:
         "map_sum": float(entry["map"].sum()),
         "positive_mass": positive,
         "forward_images": entry["forward_images"],
+        "patch": entry.get("patch"),
         "shares": entry["shares"],
         "figure": f"{stem}.png",
         "map": f"{stem}.npy",

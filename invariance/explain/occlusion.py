@@ -36,10 +36,19 @@ from ._common import (_check_encoder, _check_patch, _check_resized, _cosine_drif
 # Most patches in one map: a 64 x 64 grid. Bounds the restored images (and their
 # features) per pair; a finer grid asks for a larger --patch.
 MAX_PATCHES = 4096
-# Images per forward pass: the two views and the 64 restored images of a 128 px pair with
-# a 16 px grid in one pass (tests/benchmarks/bench_explain.py). `invariance explain` passes
-# its --batch-size instead, so a user can bound memory for large encoders.
-DEFAULT_BATCH = 66
+# Images per forward pass. Batches of 16 were the fastest measured for both a small CNN
+# (the demo encoder) and a compute-bound one (ResNet-18): 66 images of a 128 px pair cost
+# 25-27 bare single-image passes for the first and 43-58 for the second, where one batch of
+# 66 cost 55-69 for ResNet-18, whose activations then no longer fit the CPU's caches
+# (tests/benchmarks/bench_explain.py, one thread). `invariance explain` passes its
+# --batch-size instead, so a user can bound memory for large encoders.
+DEFAULT_BATCH = 16
+# Default grid: the image's shorter side cut into 16 patches, so a map costs the same number
+# of forward passes (at most 256 plus the two views) at every image size and resolves
+# objects about a sixteenth of the image across. A coarser 8 x 8 grid cannot: on 128 px
+# workbench scenes a distractor is about 20 px across, and a map spread evenly over 16 px
+# patches could put at most 0.43 of its mass on distractor pixels (tests/test_explain.py).
+DEFAULT_GRID = 16
 
 
 def _grid(height: int, width: int, patch: int) -> list[tuple[slice, slice]]:
@@ -143,7 +152,22 @@ def spread_drops(drops, patch: int, height: int, width: int) -> np.ndarray:
     return _spread(drops.ravel(), boxes, (height, width))
 
 
-def occlusion_map(encoder, clean, cluttered, *, patch: int = 16, layer: str | None = None,
+def default_patch(height: int, width: int) -> int:
+    """The default patch side: the shorter side over :data:`DEFAULT_GRID`, at least 1 px.
+
+    Parameters
+    ----------
+    height, width : int
+        The image's size in pixels.
+
+    Returns
+    -------
+    int
+    """
+    return max(1, min(height, width) // DEFAULT_GRID)
+
+
+def occlusion_map(encoder, clean, cluttered, *, patch: int | None = None, layer: str | None = None,
                   batch_size: int = DEFAULT_BATCH, name: str = "(unnamed)") -> dict:
     """How much restoring each patch of the clean view lowers a pair's cosine drift.
 
@@ -156,13 +180,14 @@ def occlusion_map(encoder, clean, cluttered, *, patch: int = 16, layer: str | No
         From :func:`invariance.encoders.load_encoder`.
     clean, cluttered : PIL.Image.Image or ndarray of shape (H, W, 3), uint8
         The two views of one scene, at the size they are stored (before preprocessing).
-    patch : int, default=16
+    patch : int, optional
         Side of the square patches in image pixels; the grid starts at the top-left
-        corner and its last row and column may be narrower. At most the image's shorter side.
+        corner and its last row and column may be narrower. At most the image's shorter
+        side. Default :func:`default_patch`: the shorter side over 16 (8 px at 128 px).
     layer : str, optional
         Graph node whose pooled feature is compared (``invariance layers``); default the
         encoder's output feature.
-    batch_size : int, default=66
+    batch_size : int, default=16
         Images per forward pass (the two views count).
     name : str, default="(unnamed)"
         The pair's name, for messages.
@@ -178,6 +203,8 @@ def occlusion_map(encoder, clean, cluttered, *, patch: int = 16, layer: str | No
     """
     encoder = _check_encoder(encoder)
     clean_arr, cluttered_arr = _pair_arrays(clean, cluttered, name)
+    if patch is None:
+        patch = default_patch(*clean_arr.shape[:2])
     patch = _check_patch(patch, clean_arr.shape, name)
     _check_resized(encoder, clean_arr.shape, name)
     batch_size = check_int("batch_size", batch_size, low=1)

@@ -117,7 +117,7 @@ def _check_selection(names, worst):
 
 
 def explain_pairs(pairs, encoder, *, names=(), worst: int | None = None, method: str = "occlusion",
-                  patch: int = 16, layer: str | None = None, scene_seed: int | None = None,
+                  patch: int | None = None, layer: str | None = None, scene_seed: int | None = None,
                   batch_size: int = DEFAULT_BATCH, extraction=None, progress=True) -> dict:
     """Drift maps of the named pairs, or of the ``worst`` pairs by relative drift.
 
@@ -133,15 +133,16 @@ def explain_pairs(pairs, encoder, *, names=(), worst: int | None = None, method:
     method : {"occlusion", "gradient"}, default="occlusion"
         :func:`~invariance.explain.occlusion_map` (exact) or
         :func:`~invariance.explain.gradient_map` (fast, first order).
-    patch : int, default=16
-        Occlusion patch side in image pixels.
+    patch : int, optional
+        Occlusion patch side in image pixels; default each image's shorter side over 16
+        (:func:`invariance.explain.occlusion.default_patch`; 8 px at 128 px).
     layer : str, optional
         Graph node to compare at; default the output feature.
     scene_seed : int, optional
         The seed ``invariance scenes`` made the set with: each pair is redrawn from it and
         checked to match the files, and the map's positive mass is split over the
         generator's masks (target, distractors, surface, lighting).
-    batch_size : int, default=66
+    batch_size : int, default=16
         Images per forward pass of the occlusion map.
     extraction : ExtractionOptions, optional
         For ranking by drift (cache, batch size).
@@ -150,7 +151,8 @@ def explain_pairs(pairs, encoder, *, names=(), worst: int | None = None, method:
     Returns
     -------
     dict
-        ``method``, ``patch`` (occlusion), ``layer``, ``pairs``: one dict per explained
+        ``method``, ``patch`` (occlusion: the side given, or ``None`` when each pair used
+        its default, which its own ``patch`` records), ``layer``, ``pairs``: one dict per explained
         pair with ``name``, ``index``, ``relative_drift`` (when ranked, else ``None``),
         the map's keys (``map``, ``drift``, ``forward_images``, ...) and ``shares``
         (``{mask: share of the positive map mass}``, ``None`` for a factor that is off in the

@@ -198,7 +198,8 @@ def _worst_pairs(result: dict, thumbnails: Thumbnails) -> dict | None:
     by_name = {m.get("name"): m for m in maps.get("pairs") or [] if isinstance(m, dict)}
     for figure in pairs:  # the occlusion map over the cluttered view, when score stored one
         if figure["name"] in by_name:
-            figure["map"] = thumbnails.overlay_uri(dataset, figure["name"], by_name[figure["name"]], maps.get("patch"))
+            figure["map"] = thumbnails.overlay_uri(dataset, figure["name"], by_name[figure["name"]],
+                                                    by_name[figure["name"]].get("patch") or maps.get("patch"))
     not_found = sum(not p["found"] for p in pairs)
     return {"pairs": pairs, "not_found": not_found, "root": str(thumbnails.root(dataset)),
             "maps": any(p.get("map") for p in pairs)}
