@@ -495,18 +495,103 @@ def pair_groups(pairs):
     return pairs.labels.groups
 
 
-def unpaired_folder(path):
-    """``(clean_paths, cluttered_paths)`` when a data folder's two sub-folders share no name.
-
-    Such a folder holds two unpaired domains (sim vs real, bench vs site); ``None`` when
-    it is not a folder with ``clean/`` and ``cluttered/``, or when any name is shared
-    (then it is a paired set, and orphans are :func:`discover_pairs`'s business).
-    """
-    path = Path(path)
+def _unpaired_names(path: Path):
+    """The image names under ``clean/`` and ``cluttered/`` when they share none, else ``None``."""
     clean_dir, cluttered_dir = path / "clean", path / "cluttered"
     if not (clean_dir.is_dir() and cluttered_dir.is_dir()):
         return None
     clean_names, cluttered_names = _image_names(clean_dir), _image_names(cluttered_dir)
     if not clean_names or not cluttered_names or set(clean_names) & set(cluttered_names):
         return None
-    return [clean_dir / n for n in clean_names], [cluttered_dir / n for n in cluttered_names]
+    return clean_names, cluttered_names
+
+
+def unpaired_folder(path):
+    """``(clean_paths, cluttered_paths)`` when a data folder's two sub-folders share no name.
+
+    Such a folder holds two unpaired domains (sim vs real, bench vs site); ``None`` when
+    it is not a folder with ``clean/`` and ``cluttered/``, or when any name is shared
+    (then it is a paired set, and orphans are :func:`discover_pairs`'s business). Its
+    labels: :func:`domain_labels`.
+    """
+    path = Path(path)
+    names = _unpaired_names(path)
+    if names is None:
+        return None
+    return [path / "clean" / n for n in names[0]], [path / "cluttered" / n for n in names[1]]
+
+
+# The sub-folders of a data folder, in the order of its two domains (A, B).
+_DOMAIN_FOLDERS = ("clean", "cluttered")
+
+
+def domain_labels(folder, names) -> LabelTable | None:
+    """Labels of the images ``names`` of one image folder scored as a domain.
+
+    An image folder's own ``labels.csv`` names each image relative to the folder. When
+    the folder is the ``clean/`` or ``cluttered/`` sub-folder of an *unpaired* data folder
+    (:func:`unpaired_folder`), the labels of both domains may sit in one ``labels.csv`` at
+    the data folder's root instead, whose first column is each image's path under the data
+    folder: ``clean/NAME`` or ``cluttered/NAME``. The prefix says which domain a row
+    belongs to, and keeps a file written for a paired folder (bare names, one row per
+    pair) from being read as this one. Every image needs one row; the column kinds (class,
+    number, factor, ``episode``) are decided over the whole file, so both domains read a
+    column the same way. Labels in both places are refused.
+
+    Parameters
+    ----------
+    folder : str or Path
+        The image folder.
+    names : sequence of str
+        Its images, relative to it, in the order of the source's rows.
+
+    Returns
+    -------
+    LabelTable or None
+        Rows in the order of ``names``; ``None`` without labels.
+    """
+    folder = Path(folder)
+    own, root = folder / LABELS_FILE, folder.parent / LABELS_FILE
+    both = _unpaired_names(folder.parent) if folder.name in _DOMAIN_FOLDERS and root.is_file() else None
+    if both is not None and own.is_file():
+        raise InvarianceError(
+            f"labels for {folder} are given twice, in {own} and in {root}; keep one (the root file names the "
+            f"images clean/NAME and cluttered/NAME)"
+        )
+    if own.is_file():
+        return read_labels(own, names)
+    if both is None:
+        return None
+    table, keys = _root_labels(folder.parent, *both)
+    row_of = {key: i for i, key in enumerate(keys)}
+    wanted = [f"{folder.name}/{n}" for n in names]
+    missing = [k for k in wanted if k not in row_of]
+    if missing:  # an image added since the folder was listed
+        raise InvarianceError(f"{root} was read for other images than {folder} holds now ({_listing(missing)}); "
+                              f"run again")
+    return table.subset([row_of[k] for k in wanted])
+
+
+def _root_labels(root: Path, clean_names, cluttered_names):
+    """The root ``labels.csv`` of an unpaired data folder over every image of both domains.
+
+    Returns the label table and its row keys (``clean/NAME`` ..., then ``cluttered/NAME`` ...).
+    """
+    path = root / LABELS_FILE
+    keys = [f"clean/{n}" for n in clean_names] + [f"cluttered/{n}" for n in cluttered_names]
+    _, csv_rows = _read_csv(path)
+    given = {r[0] for _, r in csv_rows}
+    prefixes = tuple(f"{d}/" for d in _DOMAIN_FOLDERS)
+    if given and not any(k.startswith(prefixes) for k in given):
+        raise InvarianceError(
+            f"{path}: clean/ and cluttered/ share no file name, so {root} is scored as two unpaired domains and "
+            f"its labels.csv names each image by its path under the folder; write clean/NAME or cluttered/NAME "
+            f"in the first column (found {_shown(min(given))})"
+        )
+    missing = [k for k in keys if k not in given]
+    if missing:
+        raise InvarianceError(
+            f"{path} has no row for {len(missing)} images: {_listing(missing)}; give every image of clean/ and "
+            f"cluttered/ one row, first column its path under {root} (clean/NAME or cluttered/NAME)"
+        )
+    return read_labels(path, keys), keys

@@ -425,7 +425,18 @@ def _source_side(source, encoder, layer_list, extraction, sources, progress, lab
                                  progress=progress, total=expected_frames(source, sources), label=label)
     group_of = {e.name: e.group for e in source.episodes}
     out["groups"] = np.array([group_of[ep] for ep, _ in out["keys"]])
+    out["factors"] = _source_factors(source, out["keys"])
     return out
+
+
+def _source_factors(source, keys):
+    """Clutter factor columns of an image folder's labels, one value per extracted row (else None)."""
+    table = getattr(source, "table", None)
+    if table is None or not table.factors:
+        return None
+    row_of = {e.name: e.ref for e in source.episodes}
+    rows = [row_of[episode] for episode, _ in keys]
+    return {column: values[rows] for column, values in table.factors.items()}
 
 
 def _score_source_layers(domains, side_a, side_b, layer_list, scoring):
@@ -451,7 +462,8 @@ def _score_source_layers(domains, side_a, side_b, layer_list, scoring):
             per_layer[layer] = score_unpaired_features(
                 fa, fb, groups_a=side_a["groups"], groups_b=side_b["groups"],
                 tasks_a=_label_arrays(side_a["labels"], rows_a) or None,
-                tasks_b=_label_arrays(side_b["labels"], rows_b) or None, options=options)
+                tasks_b=_label_arrays(side_b["labels"], rows_b) or None, factors_a=side_a["factors"],
+                factors_b=side_b["factors"], options=options)
     return per_layer, extra
 
 
@@ -519,6 +531,9 @@ def score_sources(source_a, source_b, spec: str, *, weights=None, layers: Sequen
         "tasks": {k: ("regression" if np.asarray(v).dtype.kind == "f" else "classification")
                   for k, v in _label_arrays(side_a["labels"], [0]).items()},
     }
+    factors = sorted({*(side_a["factors"] or {}), *(side_b["factors"] or {})})
+    if factors and domains.mode == "unpaired":  # paired domains do not break down by factor yet
+        result["dataset"]["factors"] = factors
     if domains.skipped:
         result["dataset"]["skipped_unpaired"] = len(domains.skipped)
     result["environment"] = environment_info(seed=scoring.seed, device=str(encoder.device), timings=timings)

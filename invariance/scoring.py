@@ -531,18 +531,106 @@ def _unpaired_projection(a, b, seed):
             "explained_variance_ratio": np.round(pca.explained_variance_ratio_, PROJECTION_DECIMALS).tolist()}
 
 
+def unpaired_minimum(folds):
+    """Rows and groups each domain needs for the unpaired tests (and each breakdown subgroup).
+
+    Rows: the domain classifier's :data:`~invariance.metrics.domain.MIN_PAIRS_PER_FOLD`
+    per fold, at least the MMD test's :data:`~invariance.metrics.mmd.MIN_PAIRS`; groups: one
+    whole group per fold.
+    """
+    return max(_domain.MIN_PAIRS_PER_FOLD * folds, _mmd.MIN_PAIRS), int(folds)
+
+
+def check_unpaired_size(label, rows, units, folds):
+    """Raise a clear error when domain ``label`` has too few rows or groups for the tests.
+
+    Parameters
+    ----------
+    label : str
+        ``"A"`` or ``"B"``, for the message.
+    rows : int or None
+        Rows (frames) of the domain; ``None`` when not known before decoding (videos).
+    units : int
+        Groups (episodes) of the domain, or its rows when every row is its own group.
+    folds : int
+        Domain-classifier folds.
+    """
+    need, need_groups = unpaired_minimum(folds)
+    if (rows is not None and rows < need) or units < need_groups:
+        shown = "an unknown number of" if rows is None else rows
+        raise InvarianceError(
+            f"domain {label} has {shown} rows in {units} groups; need at least {need} rows and "
+            f"{need_groups} groups (one whole group per fold): add episodes or lower folds"
+        )
+
+
 def _check_unpaired_sizes(a, b, groups_a, groups_b, folds):
-    need = max(_domain.MIN_PAIRS_PER_FOLD * folds, _mmd.MIN_PAIRS)
     for label, x, g in (("A", a, groups_a), ("B", b, groups_b)):
         units = x.shape[0] if g is None else np.unique(np.asarray(g).astype(str)).size
-        if x.shape[0] < need or units < folds:
-            raise InvarianceError(
-                f"domain {label} has {x.shape[0]} rows in {units} groups; need at least {need} rows and "
-                f"{folds} groups (one whole group per fold): add episodes or lower folds"
-            )
+        check_unpaired_size(label, x.shape[0], units, folds)
 
 
-def score_unpaired_features(a, b, *, groups_a=None, groups_b=None, tasks_a=None, tasks_b=None, options=None):
+def _two_sample_tests(a, b, groups_a, groups_b, options, bandwidth=None):
+    """The unpaired domain classifier and MMD test; a degenerate input is ``not_computable``."""
+    return {
+        "domain_classifier": _guard(_domain.unpaired_domain_classifier, a, b, groups_a=groups_a, groups_b=groups_b,
+                                    folds=options.folds, seed=options.seed, permutations=options.permutations),
+        "mmd": _guard(_mmd.unpaired_permutation_test, a, b, groups_a=groups_a, groups_b=groups_b,
+                      permutations=max(options.permutations, 1), seed=options.seed, bandwidth=bandwidth),
+    }
+
+
+def _unpaired_subgroup_metrics(a, b, groups_a, groups_b, options, bandwidth):
+    """``metrics_of(pooled indices)``: the two unpaired tests on one subgroup's rows."""
+    n_a = a.shape[0]
+
+    def rows_of(groups, idx):
+        return None if groups is None else np.asarray(groups)[idx]
+
+    def metrics_of(idx):
+        ia, ib = _bd.domain_rows(idx, n_a)
+        return _two_sample_tests(a[ia], b[ib], rows_of(groups_a, ia), rows_of(groups_b, ib), options, bandwidth)
+
+    return metrics_of
+
+
+def _unpaired_breakdowns(a, b, groups_a, groups_b, factors_a, factors_b, options, bandwidth):
+    """``breakdowns``, their Holm note, skipped subgroups and warnings of two unpaired domains.
+
+    A subgroup is the rows of A and of B sharing a factor value (docs/sources.md); every
+    subgroup's MMD uses the whole sample's bandwidth, as the paired subgroups share one
+    kernel, so the subgroups' MMD^2 are on one scale.
+    """
+    n_a = a.shape[0]
+    factors_a = _check_columns("factors_a", factors_a, n_a)
+    factors_b = _check_columns("factors_b", factors_b, b.shape[0])
+    groups, one_sided, unlabelled = _bd.unpaired_subgroups(factors_a, factors_b, n_a)
+    codes = _domain.sample_groups(groups_a, groups_b, n_a, b.shape[0])
+    need, need_groups = unpaired_minimum(options.folds)
+    groups, small = _bd.unpaired_skipped(
+        groups, n_a, codes, need, need_groups,
+        f"the unpaired subgroup tests need {need} rows and {need_groups} groups in each domain (domain classifier: "
+        f"{_domain.MIN_PAIRS_PER_FOLD} rows and one whole group per fold x {options.folds} folds; MMD: "
+        f"{_mmd.MIN_PAIRS} rows)")
+    metrics_of = _unpaired_subgroup_metrics(a, b, groups_a, groups_b, options, bandwidth)
+    breakdowns = _bd.run(groups, metrics_of, workers=_WORKERS,
+                         counts=lambda idx: _bd.unpaired_counts(idx, n_a, codes))
+    correction = _bd.correct(breakdowns)
+    warnings = _bd.unpaired_warnings(small, one_sided, unlabelled, need, need_groups)
+    return breakdowns, correction, small + one_sided, warnings
+
+
+def _unpaired_metrics(a, b, groups_a, groups_b, tasks_a, tasks_b, options):
+    metrics = _two_sample_tests(a, b, groups_a, groups_b, options)
+    if tasks_a and tasks_b:
+        metrics["probe"] = _probe.unpaired_probes(a, b, _check_columns("tasks_a", tasks_a, a.shape[0]),
+                                                  _check_columns("tasks_b", tasks_b, b.shape[0]),
+                                                  groups_a=groups_a, groups_b=groups_b, seed=options.seed)
+    return metrics
+
+
+def score_unpaired_features(a, b, *, groups_a=None, groups_b=None, tasks_a=None, tasks_b=None, factors_a=None,
+                            factors_b=None, options=None):
     """Every measure that has an unpaired form, on two samples with no scene in common.
 
     Domain classifier with folds over groups stratified by domain and a permutation test
@@ -553,6 +641,10 @@ def score_unpaired_features(a, b, *, groups_a=None, groups_b=None, tasks_a=None,
     paired-only measures are absent from ``metrics`` and listed in ``not_computed`` with
     the reason. In the result, ``clean`` stands for domain A and ``cluttered`` for B.
 
+    With factor columns on both sides, the domain classifier and MMD are repeated on the
+    rows of A and of B that share each factor value, with Holm-adjusted p-values across
+    the subgroups (Holm, Scand. J. Statist. 6, 1979), as the paired breakdowns.
+
     Parameters
     ----------
     a, b : ndarray of shape (n_a, d), (n_b, d)
@@ -561,12 +653,18 @@ def score_unpaired_features(a, b, *, groups_a=None, groups_b=None, tasks_a=None,
         Group (episode) per row; default every row its own group.
     tasks_a, tasks_b : dict of str to ndarray, optional
         Probe labels per row; labels present in both domains are probed.
+    factors_a, factors_b : dict of str to ndarray, optional
+        Clutter descriptions per row (``factor_*`` and ``level`` columns); a column is
+        broken down when both domains carry it, and listed in ``breakdowns_skipped`` when
+        only one does.
     options : ScoringOptions, optional
 
     Returns
     -------
     dict
-        ``metrics``, ``not_computed``, ``breakdowns`` (empty), ``breakdowns_skipped``,
+        ``metrics``, ``not_computed``, ``breakdowns`` (``{column: {value: {"rows": [n_a,
+        n_b], "groups": [g_a, g_b], "metrics": {"domain_classifier", "mmd"}}}}``, each test
+        with ``p_value_adjusted``), ``breakdowns_correction``, ``breakdowns_skipped``,
         ``pairs`` (empty), ``projection``, ``warnings``, ``grouping`` and ``pairing``
         ("unpaired").
     """
@@ -574,24 +672,18 @@ def score_unpaired_features(a, b, *, groups_a=None, groups_b=None, tasks_a=None,
     a, b = _domain._validate_samples(a, b)
     _check_unpaired_sizes(a, b, groups_a, groups_b, options.folds)
     with threadpool_limits(limits=_THREADS):
-        metrics = {
-            "domain_classifier": _guard(_domain.unpaired_domain_classifier, a, b, groups_a=groups_a,
-                                        groups_b=groups_b, folds=options.folds, seed=options.seed,
-                                        permutations=options.permutations),
-            "mmd": _guard(_mmd.unpaired_permutation_test, a, b, groups_a=groups_a, groups_b=groups_b,
-                          permutations=max(options.permutations, 1), seed=options.seed),
-        }
-        if tasks_a and tasks_b:
-            metrics["probe"] = _probe.unpaired_probes(a, b, _check_columns("tasks_a", tasks_a, a.shape[0]),
-                                                      _check_columns("tasks_b", tasks_b, b.shape[0]),
-                                                      groups_a=groups_a, groups_b=groups_b, seed=options.seed)
+        metrics = _unpaired_metrics(a, b, groups_a, groups_b, tasks_a, tasks_b, options)
+        breakdowns, correction, skipped, breakdown_warnings = _unpaired_breakdowns(
+            a, b, groups_a, groups_b, factors_a, factors_b, options, metrics["mmd"].get("bandwidth"))
         projection = _unpaired_projection(a, b, options.seed)
     warnings = [f"{name} not computable: {value['not_computable']}"
                 for name, value in metrics.items() if isinstance(value, dict) and "not_computable" in value]
     result = {
         "metrics": metrics, "not_computed": dict(UNPAIRED_REASONS), "pairing": "unpaired",
-        "breakdowns": {}, "breakdowns_skipped": [], "pairs": [], "projection": projection,
-        "warnings": warnings + ["unpaired domains: drift, pair retrieval and CKA are not computed (see not_computed)"],
+        "breakdowns": breakdowns, "breakdowns_correction": correction, "breakdowns_skipped": skipped,
+        "pairs": [], "projection": projection,
+        "warnings": warnings + ["unpaired domains: drift, pair retrieval and CKA are not computed (see not_computed)"]
+                    + breakdown_warnings,
         "grouping": {"unit": "group" if groups_a is not None or groups_b is not None else "row",
                      "groups": metrics["domain_classifier"].get("grouping", {}).get("groups"),
                      "note": "splits and permutations keep each group whole; p-values and intervals count "

@@ -71,10 +71,19 @@ def print_breakdowns(breakdowns) -> None:
             m = group.get("metrics", {}) if isinstance(group, dict) else {}
             acc = _fmt(metric_value(m, "domain_classifier", "accuracy"))
             drift = _fmt(metric_value(m, "paired_drift", "relative_drift"))
-            pairs = group.get("pairs") if isinstance(group, dict) else "?"
-            cells.append(f"{value}: acc {acc}, drift {drift} (n={pairs})")
+            cells.append(f"{value}: acc {acc}, drift {drift} (n={subgroup_size(group)})")
         off = " (0 = this factor off, the others on)" if str(column).startswith("factor_") else ""
         say(f"by {column}{off}: " + "; ".join(cells))
+
+
+def subgroup_size(group) -> str:
+    """A breakdown subgroup's size: its pairs, or the rows of A/B of unpaired domains."""
+    if not isinstance(group, dict):
+        return "?"
+    rows = group.get("rows")
+    if "pairs" not in group and isinstance(rows, list) and len(rows) == 2:
+        return f"{rows[0]}/{rows[1]} rows"
+    return str(group.get("pairs", "?"))
 
 
 def print_ranking(comparison) -> None:

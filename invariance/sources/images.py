@@ -6,7 +6,7 @@ from pathlib import Path
 
 import numpy as np
 
-from invariance.data import LABELS_FILE, _image_names, load_rgb, read_labels
+from invariance.data import _image_names, domain_labels, load_rgb
 from invariance.errors import InvarianceError
 
 from .base import Episode, Frame
@@ -15,9 +15,11 @@ from .base import Episode, Frame
 class ImageFolderSource:
     """The images under a folder (any depth), sorted by relative name.
 
-    A ``labels.csv`` beside them (first column the relative name) gives probe labels and,
-    in an ``episode`` column, the group of each image: images of one episode are kept
-    together by every split. Without it every image is its own group.
+    A ``labels.csv`` beside them (first column the relative name) gives probe labels,
+    clutter factors and, in an ``episode`` column, the group of each image: images of one
+    episode are kept together by every split. Without it every image is its own group. The
+    clean/ or cluttered/ sub-folder of an unpaired data folder may take its rows from the
+    data folder's labels.csv instead (:func:`invariance.data.domain_labels`).
     """
 
     kind = "images"
@@ -33,7 +35,7 @@ class ImageFolderSource:
         names = _image_names(self.path)
         if not names:
             raise InvarianceError(f"{self.path}: no images (PNG, JPEG, ...) in this folder")
-        table = read_labels(self.path / LABELS_FILE, names) if (self.path / LABELS_FILE).is_file() else None
+        table = domain_labels(self.path, names)  # its labels.csv, or an unpaired data folder's
         self.table = table
         groups = table.groups if table is not None and table.groups is not None else names
         self.episodes = [Episode(n, 1, str(self.path / n), i, str(g)) for i, (n, g) in enumerate(zip(names, groups))]
