@@ -253,19 +253,44 @@ def indistinguishable(ci, margin: float = DOMAIN_MARGIN) -> bool:
     return ci is not None and CHANCE - margin <= ci[0] and ci[1] <= CHANCE + margin
 
 
-def _reach(ci, pairs, noun: str = "pairs") -> str:
-    """``"N pairs; the interval reaches 0.440-0.625"`` for an inconclusive reading."""
-    count = f"{pairs} {noun}; " if isinstance(pairs, int) and not isinstance(pairs, bool) else ""
+def _count(value) -> int | None:
+    """``value`` when it is a positive int (not a bool), else ``None``."""
+    return value if isinstance(value, int) and not isinstance(value, bool) and value > 0 else None
+
+
+def _reach(ci, sample: str | None) -> str:
+    """``"60 pairs; the interval reaches 0.440-0.625"`` for an inconclusive reading."""
+    count = f"{sample}; " if sample else ""
     return f"{count}the interval reaches {format_number(ci[0])}{DASH}{format_number(ci[1])}"
 
 
-def read_domain_accuracy(accuracy: float, ci, *, small_sample: bool = False, pairs: int | None = None) -> Reading:
+def _rows_of_a_and_b(rows, groups=None) -> str | None:
+    """``"40 rows of A and 24 of B in 10 and 6 groups"``: the sample of an unpaired measure."""
+    if not isinstance(rows, (list, tuple)) or len(rows) != 2 or not all(_count(r) for r in rows):
+        return None
+    words = f"{rows[0]} rows of A and {rows[1]} of B"
+    if isinstance(groups, (list, tuple)) and len(groups) == 2 and all(_count(g) for g in groups):
+        words += f" in {groups[0]} and {groups[1]} groups"
+    return words
+
+
+def _unpaired_entry(entry) -> bool:
+    """Whether a metric entry measures two unpaired domains (rows of A and of B, no pairs).
+
+    The unpaired domain classifier and MMD record ``rows_used`` ([A, B]); an unpaired probe
+    records ``n_test_b`` (B's rows).
+    """
+    return isinstance(entry, dict) and (isinstance(entry.get("rows_used"), (list, tuple)) or "n_test_b" in entry)
+
+
+def read_domain_accuracy(accuracy: float, ci, *, small_sample: bool = False, pairs: int | None = None,
+                         sample: str | None = None) -> Reading:
     """Words for the held-out domain accuracy, decided by its 95% interval.
 
     Three readings: *separable* when the whole interval lies above chance (the accuracy
     then says how far, :data:`BANDS` ``"domain_accuracy"``); *indistinguishable from
     chance* when the whole interval lies within :data:`DOMAIN_MARGIN` of 0.5; otherwise
-    *inconclusive*, in a neutral tone, naming the pairs and how far the interval reaches.
+    *inconclusive*, in a neutral tone, naming the sample and how far the interval reaches.
     An interval wholly below chance points at a leak in the splits.
 
     Parameters
@@ -278,6 +303,9 @@ def read_domain_accuracy(accuracy: float, ci, *, small_sample: bool = False, pai
         The metric's ``small_sample`` flag; adds :data:`SMALL_SAMPLE_WORDS`.
     pairs : int, optional
         Pairs the accuracy was measured on, named in an inconclusive reading.
+    sample : str, optional
+        The sample in words, named instead of ``pairs`` (:func:`domain_sample`: rows of A
+        and B for unpaired domains, which have no pairs).
 
     Returns
     -------
@@ -294,7 +322,8 @@ def read_domain_accuracy(accuracy: float, ci, *, small_sample: bool = False, pai
     elif indistinguishable(ci):
         reading = Reading(CLOSE_TO_CHANCE, "good")
     else:
-        reading = Reading(f"{INCONCLUSIVE} ({_reach(interval(ci), pairs)})", "neutral")
+        count = sample or (f"{pairs} pairs" if _count(pairs) else None)
+        reading = Reading(f"{INCONCLUSIVE} ({_reach(interval(ci), count)})", "neutral")
     if small_sample:
         return Reading(f"{reading.words}; {SMALL_SAMPLE_WORDS}", reading.tone)
     return reading
@@ -389,7 +418,16 @@ def read_probe(entry: dict) -> Reading:
         return band if band.words != TASK_KEPT else Reading("some loss", "warn")
     if ci[1] < 0:
         return Reading("better on cluttered", "neutral")
-    return Reading(f"{INCONCLUSIVE} ({_reach(ci, entry.get('n_test'), 'held-out pairs')})", "neutral")
+    return Reading(f"{INCONCLUSIVE} ({_reach(ci, _probe_sample(entry))})", "neutral")
+
+
+def _probe_sample(entry: dict) -> str | None:
+    """The rows behind a probe's scores: held-out pairs, or held-out rows of A and the rows of B."""
+    held_out = _count(entry.get("n_test"))
+    if _unpaired_entry(entry):
+        rows_b = _count(entry.get("n_test_b"))
+        return f"{held_out} held-out rows of A and {rows_b} rows of B" if held_out and rows_b else None
+    return f"{held_out} held-out pairs" if held_out else None
 
 
 # ---------------------------------------------------------------- terminal rows
@@ -398,19 +436,49 @@ Row = tuple[str, str, str, str]
 
 
 def domain_pairs(entry: dict, default: int | None = None) -> int | None:
-    """Pairs behind a domain accuracy: ``pairs_used``, else half its held-out images, else ``default``."""
+    """Pairs behind a domain accuracy: ``pairs_used``, else half its held-out images, else
+    ``default``; ``None`` for unpaired domains, which have rows, not pairs (:func:`domain_sample`)."""
+    if _unpaired_entry(entry):
+        return None
     for key, scale in (("pairs_used", 1), ("n_test", 2)):
-        value = entry.get(key)
-        if isinstance(value, int) and not isinstance(value, bool) and value > 0:
+        value = _count(entry.get(key))
+        if value:
             return value // scale
-    return default
+    return _count(default)
+
+
+def sample_unit(entry: dict) -> str:
+    """What more of would narrow a measure's interval: ``"pairs"``, or for unpaired domains
+    ``"episodes"`` (resampled by group) or ``"rows"`` (no groups given)."""
+    if not _unpaired_entry(entry):
+        return "pairs"
+    grouping = entry.get("grouping") if isinstance(entry.get("grouping"), dict) else {}
+    return "episodes" if grouping.get("unit") == "group" else "rows"
+
+
+def domain_sample(entry: dict, default: int | None = None) -> str | None:
+    """The sample behind a domain accuracy in words, for an inconclusive reading.
+
+    ``"60 pairs"`` (:func:`domain_pairs`, ``default`` pairs when the entry does not say),
+    or for unpaired domains the rows and groups of each, ``"40 rows of A and 24 of B in 10
+    and 6 groups"`` (``rows_used`` and ``grouping.groups``); ``None`` when unknown.
+    """
+    if _unpaired_entry(entry):
+        grouping = entry.get("grouping") if isinstance(entry.get("grouping"), dict) else {}
+        groups = grouping.get("groups") if grouping.get("unit") == "group" else None
+        return _rows_of_a_and_b(entry.get("rows_used"), groups)
+    pairs = domain_pairs(entry, default)
+    return f"{pairs} pairs" if pairs else None
 
 
 def _domain_row(m: dict, pairs: int | None) -> Row:
     accuracy, ci = m["accuracy"], interval(m.get("ci"))
-    pairs = domain_pairs(m, pairs)
-    reading = read_domain_accuracy(accuracy, ci, small_sample=bool(m.get("small_sample")), pairs=pairs)
-    told = f"a linear classifier tells clean from cluttered on {format_number(accuracy)} of held-out images"
+    unpaired = _unpaired_entry(m)
+    reading = read_domain_accuracy(accuracy, ci, small_sample=bool(m.get("small_sample")),
+                                   sample=domain_sample(m, pairs))
+    told = (f"a linear classifier tells domain A from domain B on {format_number(accuracy)} of held-out rows "
+            f"(balanced accuracy)" if unpaired else
+            f"a linear classifier tells clean from cluttered on {format_number(accuracy)} of held-out images")
     chance = format_number(CHANCE)
     separated = separates_domains(ci)
     if separated is None:
@@ -418,14 +486,16 @@ def _domain_row(m: dict, pairs: int | None) -> Row:
     elif separated:
         why = f"{told} and its 95% interval lies above chance ({chance}), so the encoder separates the domains"
     elif ci[1] < CHANCE:
-        why = f"{told} and its 95% interval lies below chance ({chance}), so check that pairs are split by scene"
+        leak = ("check that no scene is in both domains (score the same scenes paired)" if unpaired
+                else "check that pairs are split by scene")
+        why = f"{told} and its 95% interval lies below chance ({chance}), so {leak}"
     elif indistinguishable(ci):
         why = (f"{told} and its whole 95% interval lies within {format_number(DOMAIN_MARGIN, 2)} of chance "
                f"({chance}), so clutter is not separable beyond that margin")
     else:
         why = (f"{told}; its 95% interval includes chance ({chance}), so there is no evidence the encoder "
                f"separates the domains, but it is too wide to show invariance within "
-               f"{format_number(DOMAIN_MARGIN, 2)}: more pairs would settle it")
+               f"{format_number(DOMAIN_MARGIN, 2)}: more {sample_unit(m)} would settle it")
     return ("domain classifier accuracy", format_number(accuracy), format_interval(ci), f"{reading.words}: {why}")
 
 
@@ -474,12 +544,17 @@ def _probe_row(label: str, m: dict) -> Row:
     value = f"{clean} -> {cluttered} (gap {gap} {unit})"
     if reading.words == NOT_DECODABLE:
         baseline = format_number(m.get("baseline"))
+        trained = ("a probe trained on domain A scores {} on held-out rows of A" if _unpaired_entry(m) else
+                   "a probe trained on clean features scores {} on held-out clean scenes").format(clean)
         return (f"probe {label} ({m.get('metric')})", value, "",
-                f"{NOT_DECODABLE}: a probe trained on clean features scores {clean} on held-out clean scenes, "
-                f"not above the no-feature baseline {baseline}, so its gap is left out of the worst gap and the gate")
+                f"{NOT_DECODABLE}: {trained}, not above the no-feature baseline {baseline}, so its gap is left "
+                f"out of the worst gap and the gate")
+    scored = (f"a probe trained on domain A scores {clean} on held-out rows of A and {cluttered} on the rows "
+              f"of B" if _unpaired_entry(m) else
+              f"a probe trained on clean features scores {clean} on held-out clean and {cluttered} on the same "
+              f"scenes cluttered")
     return (f"probe {label} ({m.get('metric')})", value, format_interval(m.get("gap_ci")),
-            f"{reading.words}: a probe trained on clean features scores {clean} on held-out clean and "
-            f"{cluttered} on the same scenes cluttered (gap {gap} {unit})")
+            f"{reading.words}: {scored} (gap {gap} {unit})")
 
 
 def _not_computable(title: str, value) -> Row | None:

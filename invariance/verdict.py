@@ -177,16 +177,19 @@ def collapse_reason(metrics: dict, warnings: Sequence[str] = ()) -> str | None:
 def _score_interval(entry: dict, score: float) -> tuple[float, float]:
     """95% interval of the held-out cluttered score.
 
-    ``cluttered_ci`` when the result has it; otherwise, for accuracy, the exact
-    Clopper-Pearson interval over the held-out pairs (scipy.stats.binomtest), and for
-    R^2 the gap interval's half-width around the score (the clean score on clean views
-    varies far less than the cluttered one, so the gap's spread is mostly the cluttered
-    score's; an approximation until the result stores ``cluttered_ci``).
+    ``cluttered_ci`` when the result has it (unpaired probes store it); otherwise, for
+    accuracy, the exact Clopper-Pearson interval (Clopper & Pearson, Biometrika 26, 1934;
+    scipy.stats.binomtest) over the rows that score was measured on: the held-out pairs
+    (``n_test``), or for an unpaired probe the rows of B (``n_test_b``; its ``n_test``
+    counts A's held-out rows). For R^2 the gap interval's half-width around the score
+    (the clean score on clean views varies far less than the cluttered one, so the gap's
+    spread is mostly the cluttered score's; an approximation until the result stores
+    ``cluttered_ci``).
     """
     stored = readings.interval(entry.get("cluttered_ci"))
     if stored is not None:
         return stored
-    n_test = entry.get("n_test")
+    n_test = entry.get("n_test_b", entry.get("n_test"))
     if entry.get("metric") == "accuracy" and isinstance(n_test, int) and not isinstance(n_test, bool) and n_test > 0:
         correct = int(round(min(1.0, max(0.0, score)) * n_test))
         ci = binomtest(correct, n_test).proportion_ci(_CONFIDENCE, method="exact")
@@ -380,13 +383,19 @@ def worst_carried_gap(metrics: dict, carried: Sequence[str] | None = None) -> tu
     return task, entry
 
 
+def _unit(result: dict) -> str:
+    """``"pairs"``, or ``"episodes"``/``"rows"`` for unpaired domains (readings.sample_unit)."""
+    entry = (result.get("metrics") or {}).get("domain_classifier")
+    return readings.sample_unit(entry) if isinstance(entry, dict) else "pairs"
+
+
 def _evidence(metrics: dict, n_pairs) -> str:
     entry = metrics.get("domain_classifier")
     accuracy = metric_value(metrics, "domain_classifier", "accuracy")
     if accuracy is None or not isinstance(entry, dict):
         return "its domain accuracy is not computable"
     ci = readings.interval(entry.get("ci"))
-    words = readings.read_domain_accuracy(accuracy, ci, pairs=readings.domain_pairs(entry, n_pairs)).words
+    words = readings.read_domain_accuracy(accuracy, ci, sample=readings.domain_sample(entry, n_pairs)).words
     return f"clutter reads {words} in its features (domain accuracy {readings.format_number(accuracy)} " \
            f"{readings.format_interval(ci)})"
 
@@ -402,7 +411,9 @@ def _best_sentence(results, ranking: Ranking, names) -> list[Piece]:
                 (f"on cluttered views every encoder's probes stay within {SKILL_FLOOR} of the no-feature "
                  f"baseline on {tasks}, so none is worth a hardware trial on this evidence.", False)]
     metrics = results[best].get("metrics") or {}
-    text = (f"on cluttered views its clean-trained probes keep {_skill_text(a.information)} of the task "
+    where = ("on domain B its probes trained on domain A" if results[best].get("pairing") == "unpaired" else
+             "on cluttered views its clean-trained probes")
+    text = (f"{where} keep {_skill_text(a.information)} of the task "
             f"information ({readings.read_task_information(a.information.value).words}; mean skill over "
             f"{tasks}, 1 = perfect, 0 = no better than the no-feature baseline); "
             f"{_evidence(metrics, (results[best].get('dataset') or {}).get('pairs'))}.")
@@ -418,7 +429,7 @@ def _shown(ranking: Ranking, i: int) -> str:
     return "domain accuracy " + readings.format_interval(ranking.assessments[i].domain_ci)
 
 
-def _order_sentence(ranking: Ranking, names) -> str | None:
+def _order_sentence(results, ranking: Ranking, names) -> str | None:
     best = ranking.order[0]
     if len(ranking.order) < 2 or ranking.assessments[best].collapsed:
         return None
@@ -426,8 +437,8 @@ def _order_sentence(ranking: Ranking, names) -> str | None:
     if tied:
         listed = "; ".join(f"{names[i]}, {_shown(ranking, i)}" for i in tied)
         return (f"Its interval overlaps those of {listed}, so they share rank 1: the point estimates put "
-                f"{names[best]} ahead, but this data does not settle the order (more pairs would narrow the "
-                f"intervals).")
+                f"{names[best]} ahead, but this data does not settle the order (more {_unit(results[best])} "
+                f"would narrow the intervals).")
     second = ranking.order[1]
     return (f"Its interval lies wholly above that of the next, {names[second]} ({_shown(ranking, second)}), "
             f"so first place is clear on this data.")
@@ -486,7 +497,7 @@ def verdict(results: Sequence[dict], ranking: Ranking | None = None,
     sentences: list[list[Piece]] = []
     if ranking.basis == TASK_BASIS:
         sentences.append(_best_sentence(results, ranking, names))
-        for extra in (_loss_sentence(results, ranking, names), _order_sentence(ranking, names)):
+        for extra in (_loss_sentence(results, ranking, names), _order_sentence(results, ranking, names)):
             if extra:
                 sentences.append([(extra, False)])
     else:
@@ -498,7 +509,7 @@ def verdict(results: Sequence[dict], ranking: Ranking | None = None,
             head = "Ranked first by invariance" if len(results) > 1 else "By invariance alone"
             sentences.append([(names[best], True), (f": {head.lower()}, "
                               f"{_evidence(metrics, (results[best].get('dataset') or {}).get('pairs'))}.", False)])
-            order = _order_sentence(ranking, names)
+            order = _order_sentence(results, ranking, names)
             if order:
                 sentences.append([(order, False)])
         caveat = BLIND_CAVEAT

@@ -316,3 +316,91 @@ def test_compare_ranks_features_directories_like_the_scores_of_each(tmp_path, sc
     assert comparison["results"][0]["metrics"] == json.loads(single.read_text())["metrics"]
     res = _run(["compare", str(scene_set), *dirs])
     assert res.exit_code == 2 and "--features-dir replaces DATA" in res.output
+
+
+# --------------------------------------------------------------- domain options (shared with compare)
+
+NO_ENCODER = "python:invariance.zoo:no_such"  # were it loaded, the run would end with exit 1 naming it
+
+
+def _paired_folder(root):
+    from PIL import Image
+
+    for sub in ("clean", "cluttered"):
+        (root / sub).mkdir(parents=True)
+        Image.new("RGB", (8, 8)).save(root / sub / "a.png")
+    (root / "labels.csv").write_text("file,x\na.png,1\n")
+    return root
+
+
+@pytest.mark.parametrize("flag", [["--stride", "2"], ["--max-frames-per-episode", "3"], ["--label", "x=data/x"]])
+def test_frame_options_on_a_paired_folder_are_usage_errors_before_any_work(tmp_path, flag):
+    # A paired folder scores every pair: before, these options were accepted and ignored.
+    root = _paired_folder(tmp_path / "d")
+    out = tmp_path / "r.json"
+    res = CliRunner().invoke(cli, ["score", str(root), *flag, "--encoder", NO_ENCODER, "--json", str(out)])
+    assert res.exit_code == 2 and "apply to two domains" in res.stderr and flag[0] in res.stderr, res.output
+    assert not out.exists()
+
+
+@pytest.mark.parametrize("args, message", [
+    (["--features", "{a}", "{b}", "--stride", "2"], "do not apply to --features"),
+    (["--features-dir", "{root}", "--unpaired"], "apply to DATA, not to --features-dir"),
+    (["--features-dir", "{root}", "--explain-worst", "2"], "not --features-dir"),
+    (["{root}", "--encoder", NO_ENCODER, "--unpaired", "--explain-worst", "2"], "--explain-worst needs paired"),
+])
+def test_options_that_would_be_ignored_are_usage_errors(tmp_path, args, message):
+    a, b = _features(tmp_path)
+    root = _paired_folder(tmp_path / "d")
+    res = CliRunner().invoke(cli, ["score", *(x.format(a=a, b=b, root=root) for x in args)])
+    assert res.exit_code == 2 and message in res.stderr, res.output
+
+
+def test_outputs_over_the_labels_of_unpaired_image_domains_are_refused_before_any_work(tmp_path):
+    from test_unpaired_folders import _folder, unpaired_root
+
+    root = tmp_path / "data"
+    unpaired_root(root, 6, 2)
+    a, b = tmp_path / "a", tmp_path / "b"
+    _folder(a, "imgs", 6, 2, clutter=False, first=0)
+    _folder(b, "imgs", 6, 2, clutter=True, first=100)
+    cases = [([root], root / "labels.csv"),  # the root labels.csv of one unpaired folder
+             ([root, "--unpaired"], root / "labels.csv"),
+             ([f"images:{a / 'imgs'}", f"images:{b / 'imgs'}"], b / "imgs" / "labels.csv")]
+    for data, target in cases:
+        before = target.read_bytes()
+        res = CliRunner().invoke(cli, ["score", *map(str, data), "--encoder", NO_ENCODER, "--json", str(target)])
+        assert res.exit_code == 1 and "is read by this run" in res.stderr, (data, res.output)
+        assert len(res.stderr.strip().splitlines()) == 1 and target.read_bytes() == before
+
+
+def test_too_few_groups_stop_before_the_encoder_loads(tmp_path):
+    from test_unpaired_folders import _folder
+
+    a, b = tmp_path / "a", tmp_path / "b"
+    _folder(a, "imgs", 3, 4, clutter=False, first=0)  # 12 images in 3 episodes: 5 folds need 5 groups
+    _folder(b, "imgs", 8, 2, clutter=True, first=100)
+    out = tmp_path / "r.json"
+    res = CliRunner().invoke(cli, ["score", f"images:{a / 'imgs'}", f"images:{b / 'imgs'}", "--unpaired",
+                                   "--encoder", NO_ENCODER, "--json", str(out)])
+    assert res.exit_code == 1 and not out.exists()
+    assert "domain A has 12 rows in 3 groups; need at least 10 rows and 5 groups" in res.stderr
+
+
+@pytest.mark.parametrize("flag, encoder, message", [
+    (["--label", "x=data/x"], NO_ENCODER, "an image folder takes its labels from labels.csv"),
+    (["--stride", "2"], "python:invariance.zoo:clean_only_encoder", "fewer than the stride 2"),
+])
+def test_frame_options_reach_the_domains_of_an_unpaired_folder(tmp_path, flag, encoder, message):
+    # Before, an unpaired folder went through score_dataset, which dropped the source options:
+    # both were accepted and ignored. An image is one frame of its own, so both are refused by
+    # the image folder source, the label before the encoder loads.
+    from test_unpaired_folders import unpaired_root
+
+    root = tmp_path / "data"
+    unpaired_root(root, 5, 2)
+    out = tmp_path / "r.json"
+    res = CliRunner().invoke(cli, ["score", str(root), *flag, "--encoder", encoder, "--image-size", "32",
+                                   "--quiet", "--no-cache", "--json", str(out)])
+    assert res.exit_code == 1 and message in res.stderr and "no_such" not in res.stderr, res.output
+    assert not out.exists()

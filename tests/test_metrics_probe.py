@@ -234,3 +234,77 @@ def test_bad_test_fraction(fraction):
     X = np.zeros((20, 3))
     with pytest.raises(InvarianceError, match="test_fraction"):
         linear_probes(X, X, {}, test_fraction=fraction)
+
+
+# ----------------------------------------------------------------------- unpaired: B's own interval
+
+def _unpaired_classes(rng, n_a, n_b, groups_b=None, flip_b=None):
+    """Two classes read off the first of 6 dimensions; ``flip_b`` marks rows of B whose label is the other one."""
+    a, b = rng.standard_normal((n_a, 6)), rng.standard_normal((n_b, 6))
+    ya = np.where(a[:, 0] > 0, "nut", "bolt")
+    yb = np.where((b[:, 0] > 0) ^ (flip_b if flip_b is not None else False), "nut", "bolt")
+    return probe.unpaired_probes(a, b, {"part": ya}, {"part": yb}, groups_b=groups_b)["part"]
+
+
+def test_unpaired_b_score_interval_counts_the_rows_of_b_not_the_held_out_rows_of_a():
+    # Every row of B is its own group: B's score interval contains the exact Clopper-Pearson
+    # interval of B's correct rows out of B's 240 (Clopper & Pearson, Biometrika 26, 1934;
+    # scipy.stats.binomtest), and is about as wide, not as wide as that interval over A's
+    # 18 held-out rows, the count the verdict used before.
+    from scipy.stats import binomtest
+
+    out = _unpaired_classes(np.random.default_rng(11), 60, 240)
+    assert out["n_test_b"] == 240 and out["n_test"] == 18  # GroupShuffleSplit(test_size=0.3) of 60 rows
+    correct = out["cluttered"] * 240
+    assert correct == pytest.approx(round(correct), abs=1e-9)
+    exact = binomtest(round(correct), 240).proportion_ci(0.95, method="exact")
+    low, high = out["cluttered_ci"]
+    assert low <= exact.low and high >= exact.high
+    assert high - low < 1.25 * (exact.high - exact.low)
+    over_a = binomtest(round(out["cluttered"] * 18), 18).proportion_ci(0.95, method="exact")
+    assert high - low < 0.5 * (over_a.high - over_a.low)
+    assert "Clopper-Pearson interval over B's 240 rows" in out["cluttered_ci_method"]
+
+
+def test_unpaired_b_score_interval_resamples_whole_episodes_of_b():
+    # 12 episodes of 20 rows; in half of them the label is the other class, so the probe is
+    # right on whole episodes or wrong on whole episodes (accuracy about 0.5). The rows are
+    # then not independent draws: the cluster bootstrap over 12 episodes (Davison & Hinkley
+    # 1997, section 3.8) must be far wider than the binomial interval over 240 rows.
+    from scipy.stats import binomtest
+
+    groups = np.repeat(np.arange(12), 20)
+    out = _unpaired_classes(np.random.default_rng(12), 60, 240, groups_b=groups, flip_b=groups % 2 == 1)
+    exact = binomtest(round(out["cluttered"] * 240), 240).proportion_ci(0.95, method="exact")
+    low, high = out["cluttered_ci"]
+    assert 0.35 < out["cluttered"] < 0.65
+    assert high - low > 2.5 * (exact.high - exact.low)
+    assert "over the 12 groups of B" in out["cluttered_ci_method"]
+
+
+def test_unpaired_r2_interval_of_b_is_centred_on_its_score():
+    # As the R^2 gap's (see _interval): the same width, centred on the estimate.
+    rng = np.random.default_rng(13)
+    a, b = rng.standard_normal((60, 6)), rng.standard_normal((80, 6))
+    out = probe.unpaired_probes(a, b, {"x": a[:, 0] + 0.5 * rng.standard_normal(60)},
+                                {"x": b[:, 0] + 0.5 * rng.standard_normal(80)})["x"]
+    low, high = out["cluttered_ci"]
+    assert (low + high) / 2 == pytest.approx(out["cluttered"], abs=1e-12) and 0 < high - low < 0.5
+    assert "Clopper-Pearson" not in out["cluttered_ci_method"]
+
+
+def test_unpaired_regression_label_constant_over_b_is_not_computable():
+    # R^2 = 1 - SS_res/SS_tot has no SS_tot when every label of B is equal (scikit-learn's
+    # r2_score then returns a placeholder); before, the bootstrap of the gap failed on it
+    # with an IndexError.
+    rng = np.random.default_rng(14)
+    a, b = rng.standard_normal((40, 4)), rng.standard_normal((30, 4))
+    out = probe.unpaired_probes(a, b, {"x": a[:, 0], "c": np.where(a[:, 0] > 0, "nut", "bolt")},
+                                {"x": np.full(30, 2.0), "c": np.full(30, "nut")})
+    assert out["x"] == {"not_computable": "the label has one value over domain B's rows, so R^2 on B is undefined"}
+    # one class over B is fine for accuracy: its interval still holds the exact one of B's 30 rows
+    from scipy.stats import binomtest
+
+    exact = binomtest(round(out["c"]["cluttered"] * 30), 30).proportion_ci(0.95, method="exact")
+    assert out["c"]["n_test_b"] == 30
+    assert out["c"]["cluttered_ci"][0] <= exact.low and out["c"]["cluttered_ci"][1] >= exact.high

@@ -231,3 +231,54 @@ def test_number_formats():
     assert format_interval([0.49326, 0.63478]) == "[0.493, 0.635]" and format_interval(None) == ""
     assert format_percent(0.818) == "82%" and format_percent(float("nan")) == "\u2013"
     assert readings.format_number(True) == "\u2013"  # a flag is not a number
+
+
+# ---------------------------------------------------------------- unpaired domains: rows, not pairs
+
+def _unpaired_metrics():
+    """Metrics of two unpaired domains of 8 episodes x 4 rows (6 dimensions) drawn alike."""
+    from invariance.options import ScoringOptions
+    from invariance.scoring import score_unpaired_features
+
+    rng = np.random.default_rng(21)
+    groups = np.repeat(np.arange(8), 4)
+    a, b = (rng.standard_normal((8, 6))[groups] + 0.3 * rng.standard_normal((32, 6)) for _ in range(2))
+    return score_unpaired_features(a, b, groups_a=groups, groups_b=groups,
+                                   options=ScoringOptions(permutations=20))["metrics"]
+
+
+def test_an_inconclusive_unpaired_domain_accuracy_names_rows_of_a_and_b():
+    # The unpaired classifier holds out every row of A and B once (n_test 64 here); read as
+    # a paired result that was "32 pairs". Its sample is 32 rows of each domain in 8 episodes
+    # each (rows_used, grouping), and its interval resamples episodes.
+    metrics = _unpaired_metrics()
+    entry = metrics["domain_classifier"]
+    assert entry["n_test"] == 64 and entry["rows_used"] == [32, 32]
+    assert readings.domain_sample(entry) == "32 rows of A and 32 of B in 8 and 8 groups"
+    assert readings.domain_pairs(entry, 0) is None
+    row = describe_metrics(metrics)[0]
+    assert row[3].startswith("inconclusive (32 rows of A and 32 of B in 8 and 8 groups; the interval reaches "
+                             f"{format_interval(entry['ci'])[1:-1].replace(', ', chr(0x2013))})"), row[3]
+    assert "domain A from domain B" in row[3] and "more episodes would settle it" in row[3]
+    assert "pairs" not in row[3]
+    # a paired entry keeps its pairs
+    assert readings.domain_sample({"n_test": 120}) == "60 pairs"
+
+
+def test_an_inconclusive_unpaired_probe_names_held_out_rows_of_a_and_the_rows_of_b():
+    # The probe is fitted on A's training rows and scored on A's held-out rows and on all of
+    # B: GroupShuffleSplit(test_size=0.3) of 60 rows holds out 18; B has 40. Read as paired,
+    # that was "18 held-out pairs".
+    from invariance.metrics.probe import unpaired_probes
+
+    rng = np.random.default_rng(21)
+    a, b = rng.standard_normal((60, 6)), rng.standard_normal((40, 6))
+    probe = unpaired_probes(a, b, {"x": a[:, 0] + 0.5 * rng.standard_normal(60)},
+                            {"x": b[:, 0] + 0.5 * rng.standard_normal(40)})["x"]
+    assert probe["n_test"] == 18 and probe["n_test_b"] == 40 and probe["decodable"]
+    ci = readings.interval(probe["gap_ci"])
+    assert ci[0] < -readings.GAP_MARGIN and ci[1] > readings.GAP_MARGIN  # straddles 0 beyond the margin
+    reading = read_probe(probe)
+    assert reading.words.startswith("inconclusive (18 held-out rows of A and 40 rows of B; the interval reaches")
+    row = describe_metrics({"probe": {"x": probe}})[0]
+    assert "trained on domain A" in row[3] and "on the rows of B" in row[3] and "same scenes" not in row[3]

@@ -182,3 +182,46 @@ def test_collapse_is_read_from_an_all_constant_warning():
     assert verdict.collapse_reason(metrics, ["512 of 512 feature columns are constant over all images; they "
                                              "carry no information"])
     assert np.isfinite(verdict.rank([_result("y")]).assessments[0].information.value)
+
+
+def test_an_unpaired_accuracy_interval_counts_the_rows_of_b():
+    # An unpaired probe scores its `cluttered` accuracy on B's rows (n_test_b), not on A's
+    # held-out rows (n_test). A result written before cluttered_ci was stored: 48 of B's 64
+    # rows right, 15 of A's 20. The skill interval maps the exact Clopper-Pearson interval of
+    # 48 of 64 (Clopper & Pearson, Biometrika 26, 1934; scipy.stats.binomtest), not of 15 of 20.
+    entry = {**_probe("accuracy", 0.75, 0.75, 0.5, (-0.2, 0.2), n_test=20), "n_test_b": 64, "trained_on": "A"}
+    skill = verdict.task_skill(entry)
+    over_b = binomtest(48, 64).proportion_ci(0.95, method="exact")
+    assert skill.value == pytest.approx(0.5)
+    assert skill.low == pytest.approx((over_b.low - 0.5) / 0.5)
+    assert skill.high == pytest.approx((over_b.high - 0.5) / 0.5)
+    over_a = binomtest(15, 20).proportion_ci(0.95, method="exact")
+    assert skill.low > (over_a.low - 0.5) / 0.5 + 0.05  # the old interval, wider by the smaller count
+
+
+def test_an_unpaired_verdict_speaks_of_domains_rows_and_episodes_not_pairs():
+    # Two encoders of the same unpaired domains (8 episodes of 4 rows a side); their domain
+    # accuracy intervals overlap chance, so the verdict names the sample behind them: the
+    # unpaired classifier's rows_used and groups (32 and 32 rows in 8 and 8 groups), where
+    # half its 64 held-out images would have been read as "32 pairs".
+    from invariance.scoring import score_unpaired_features
+    from invariance.options import ScoringOptions
+
+    rng = np.random.default_rng(21)
+    groups = np.repeat(np.arange(8), 4)
+
+    def domain():
+        return rng.standard_normal((8, 6))[groups] + 0.3 * rng.standard_normal((32, 6))
+
+    a, b = domain(), domain()
+    results = []
+    for name, features_b in (("one", b), ("two", b + 0.5 * rng.standard_normal(b.shape))):
+        scored = score_unpaired_features(a, features_b, groups_a=groups, groups_b=groups,
+                                         options=ScoringOptions(permutations=20))
+        results.append({**scored, "encoder": {"spec": name, "name": name}, "dataset": {"pairs": 0}})
+    dc = results[0]["metrics"]["domain_classifier"]
+    assert dc["rows_used"] == [32, 32] and dc["grouping"]["groups"] == [8, 8] and dc["n_test"] == 64
+    text = verdict.plain(verdict.verdict(results))
+    assert "inconclusive (32 rows of A and 32 of B in 8 and 8 groups; the interval reaches" in text
+    assert "more episodes would narrow the intervals" in text
+    assert " pairs" not in text

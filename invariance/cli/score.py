@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+from dataclasses import replace
 from pathlib import Path
 
 import click
 
 from ._print import print_summary
-from ._sources import source_options
+from ._sources import (check_domains, compared_domains, domain_arguments, domain_flags_given, source_inputs,
+                       source_options)
 from ._shared import (EXIT_CODES_HELP, check_outputs, say, encoder_option, extraction_options, gate_options,
                       handle_errors, json_option, quiet_option, report_option, scoring_options, weights_option,
                       write_result_outputs)
@@ -60,7 +62,10 @@ def score(data, spec, weights, layers, features, features_dir, labels_csv, json_
     hdf5:demos.h5#frames=data/*/obs/front_image, zarr:replay.zarr#frames=data/img, a
     folder of videos (one per episode) or of images. Domains with the same episodes are
     paired by (episode, frame index); otherwise, or with --unpaired, they are scored as
-    unpaired domains. Every split keeps an episode whole (docs/sources.md).
+    unpaired domains; --stride, --max-frames-per-episode and --label apply to them only. A
+    folder whose clean/ and cluttered/ share no file name is two unpaired domains; its
+    labels.csv at the root names each image clean/NAME or cluttered/NAME. Every split keeps
+    an episode whole (docs/sources.md).
 
     Passing gates is evidence, not a safety certificate: trials on hardware follow the
     site's safety rules and the applicable standards.
@@ -72,6 +77,12 @@ def score(data, spec, weights, layers, features, features_dir, labels_csv, json_
             raise click.UsageError("--features-dir replaces DATA and --features; give one of them")
         if len(layers) > 1:
             raise click.UsageError("--features-dir scores one layer at a time; give at most one --layer")
+        if domain_flags_given(sources):
+            raise click.UsageError("--unpaired, --stride, --max-frames-per-episode and --label apply to DATA, not to "
+                                   "--features-dir")
+        if explain_worst or output_tolerance is not None:
+            raise click.UsageError("--explain-worst and --output-tolerance need images and an encoder (DATA and "
+                                   "--encoder), not --features-dir")
         check_outputs({"--json": json_path, "--report": report_path, "--drift-csv": drift_csv},
                       files=[labels_csv, features_dir / "manifest.json"])
         result = _score_features_dir(features_dir, spec, layers[0] if layers else None, labels_csv, scoring)
@@ -79,40 +90,32 @@ def score(data, spec, weights, layers, features, features_dir, labels_csv, json_
             result["encoder"]["name"] = name
         _finish(result, gates, json_path, report_path, drift_csv, scoring)
         return
-    if len(data) > 2:
-        raise click.UsageError(f"give one data folder or two domains (DATA_A DATA_B); got {len(data)} arguments")
-    if features is None and (not data or spec is None):
-        raise click.UsageError("give DATA and --encoder SPEC, or --features CLEAN.npy CLUTTERED.npy")
-    if features is not None and (data or spec is not None):
-        raise click.UsageError("--features replaces DATA and --encoder; give one or the other")
-    folder = data[0] if len(data) == 1 else None
+    data_a, data_b, domains, sources = _inputs(data, spec, features, sources, extraction)
     tolerance = None
     if output_tolerance is not None:
         from ..metrics.output_drift import parse_tolerance
 
-        if features is not None or len(data) == 2 or sources.unpaired:
+        if features is not None or domains is not None:
             raise click.UsageError("--output-tolerance needs paired images and a policy (DATA and --encoder)")
         tolerance = parse_tolerance(output_tolerance)
-    if explain_worst and (features is not None or features_dir is not None or len(data) == 2 or sources.unpaired):
+    if explain_worst and (features is not None or domains is not None):
         raise click.UsageError("--explain-worst needs paired images and an encoder (DATA and --encoder)")
-    check_outputs({"--json": json_path, "--report": report_path, "--drift-csv": drift_csv}, data=folder,
-                  specs=[spec or ""], files=[weights, labels_csv, *(features or ()), *_source_files(data)])
+    check_outputs({"--json": json_path, "--report": report_path, "--drift-csv": drift_csv},
+                  data=data_a if data_b is None else None, specs=[spec or ""],
+                  files=[weights, labels_csv, *(features or ()), *source_inputs(domains or ())])
     if features is not None:
         result = _score_feature_files(features, labels_csv, scoring, unpaired=sources.unpaired)
         if name:
             result["encoder"]["name"] = name
-    elif len(data) == 2 or sources.unpaired:
-        a, b = data if len(data) == 2 else (f"images:{folder / 'clean'}", f"images:{folder / 'cluttered'}")
-        result = pipeline.score_sources(str(a), str(b), spec, weights=weights, layers=layers, name=name,
-                                        extraction=extraction, scoring=scoring, sources=sources, progress=not quiet)
+    elif domains is not None:
+        _announce_domains(data_a, data_b, domains, sources, scoring, quiet)
+        result = pipeline.score_sources(str(domains[0]), str(domains[1]), spec, weights=weights, layers=layers,
+                                        name=name, extraction=extraction, scoring=scoring, sources=sources,
+                                        progress=not quiet)
     else:
-        from ..sources import KINDS
-
-        if str(folder).partition(":")[0] in KINDS or "#" in str(folder):
-            raise click.UsageError(f"{folder} names one source; give two domains (DATA_A DATA_B) to score sources")
-        result = pipeline.score_dataset(folder, spec, weights=weights, layers=layers, name=name, extraction=extraction,
-                                        scoring=scoring, progress=not quiet, output_tolerance=tolerance,
-                                        explain_worst=explain_worst)
+        result = pipeline.score_dataset(data_a, spec, weights=weights, layers=layers, name=name,
+                                        extraction=extraction, scoring=scoring, progress=not quiet,
+                                        output_tolerance=tolerance, explain_worst=explain_worst)
     _finish(result, gates, json_path, report_path, drift_csv, scoring)
 
 
@@ -147,13 +150,40 @@ def _score_features_dir(folder, spec, layer, labels_csv, scoring):
                                          scoring=scoring, source=source, groups=groups)
 
 
-def _source_files(data):
-    """The paths that two source specs read (outputs must not overwrite them)."""
-    if len(data) != 2:
-        return []
-    from ..sources import parse_spec
+def _inputs(data, spec, features, sources, extraction):
+    """``(DATA_A, DATA_B, domains, sources)`` after the usage checks of DATA and --features.
 
-    return [parse_spec(str(d)).path for d in data]
+    ``domains`` is the two source specs to score (:func:`compared_domains`), ``None`` for
+    one paired data folder or feature files; DATA arguments are checked as `compare`
+    checks them (:func:`domain_arguments`).
+    """
+    if features is None and (not data or spec is None):
+        raise click.UsageError("give DATA and --encoder SPEC, or --features CLEAN.npy CLUTTERED.npy")
+    if features is None:
+        data_a, data_b = domain_arguments(data, sources)
+        sources = replace(sources, skip_unpaired=sources.skip_unpaired or extraction.skip_unpaired)
+        return data_a, data_b, compared_domains(data_a, data_b, sources), sources
+    if data or spec is not None:
+        raise click.UsageError("--features replaces DATA and --encoder; give one or the other")
+    if _frame_options_given(sources):
+        raise click.UsageError("--stride, --max-frames-per-episode and --label read frames of two domains; "
+                               "they do not apply to --features (give --unpaired alone for unpaired rows)")
+    return None, None, None, sources
+
+
+def _frame_options_given(sources) -> bool:
+    """Whether a frame option (--stride, --max-frames-per-episode, --label) was given; --unpaired is not one."""
+    return domain_flags_given(replace(sources, unpaired=False))
+
+
+def _announce_domains(data_a, data_b, domains, sources, scoring, quiet) -> None:
+    """Refuse what would fail after extraction (see check_domains) before the encoder loads,
+    and say on stderr when one data folder is scored as two unpaired domains."""
+    mode = check_domains(*domains, sources, scoring.folds)
+    if mode == "unpaired" and data_b is None and not quiet:
+        say(f"{data_a}: " + ("scoring clean/ and cluttered/ as unpaired domains (--unpaired)" if sources.unpaired
+                             else "clean/ and cluttered/ share no file name; scoring them as unpaired domains"),
+            err=True)
 
 
 def _score_feature_files(features, labels_csv, scoring, unpaired=False):

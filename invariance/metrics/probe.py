@@ -12,7 +12,7 @@ from __future__ import annotations
 from functools import lru_cache
 
 import numpy as np
-from scipy.stats import norm
+from scipy.stats import binomtest, norm
 from scipy.stats import t as student_t
 from sklearn.linear_model import LogisticRegression, RidgeCV
 from sklearn.model_selection import GroupShuffleSplit, train_test_split
@@ -412,7 +412,7 @@ def linear_probes(
 
 
 def _unpaired_resamples(kind, parts, seed, resamples):
-    """Gap (A held-out - B) and margin (A held-out - baseline) per cluster-bootstrap resample.
+    """Gap (A held-out - B), margin (A held-out - baseline) and B's score per cluster-bootstrap resample.
 
     The held-out rows of A and the rows of B are independent samples, so each is resampled
     by its own groups (Davison & Hinkley 1997, section 3.8); the baseline rides on A's.
@@ -426,7 +426,27 @@ def _unpaired_resamples(kind, parts, seed, resamples):
     gaps = scores["a"]["model"] - scores["b"]["model"]
     margins = scores["a"]["model"] - scores["a"]["baseline"]
     ok = np.isfinite(gaps) & np.isfinite(margins)
-    return gaps[ok], margins[ok]
+    b_scores = scores["b"]["model"]
+    return gaps[ok], margins[ok], b_scores[np.isfinite(b_scores)]
+
+
+def _b_score_interval(kind, b_scores, point, n_groups, n_rows):
+    """95% interval of B's score and how it was made (the result's ``cluttered_ci``).
+
+    The cluster bootstrap over B's groups (expanded percentile, symmetric for R^2 as the
+    gap's) counts episodes, as every interval here does. For accuracy it is widened to
+    contain the exact Clopper-Pearson interval over B's rows (Clopper & Pearson,
+    Biometrika 26, 1934; scipy.stats.binomtest): the binomial floor of independent rows,
+    which the bootstrap misses at 0 or 1 correct (a zero-width interval) and in few groups.
+    """
+    low, high = _interval(b_scores, point, max(n_groups, 2), kind == "regression")
+    method = (f"cluster bootstrap over the {n_groups} groups of B, expanded percentile"
+              f"{', symmetric' if kind == 'regression' else ''}, {b_scores.size} resamples, 95%")
+    if kind == "classification":
+        exact = binomtest(int(round(point * n_rows)), n_rows).proportion_ci(_CONFIDENCE, method="exact")
+        low, high = min(low, float(exact.low)), max(high, float(exact.high))
+        method += f", widened to contain the exact Clopper-Pearson interval over B's {n_rows} rows"
+    return [low, high], method
 
 
 def _codes(groups, n):
@@ -446,6 +466,8 @@ def _unpaired_one(a, b, values_a, values_b, groups_a, groups_b, seed, test_fract
         return {"not_computable": f"only {idx_b.size} rows of domain B carry this label as a {kind} target; "
                                   f"need {MIN_LABELLED_PAIRS}"}
     y_b = values_b[idx_b].astype(np.float64) if kind == "regression" else values_b[idx_b].astype(str)
+    if kind == "regression" and np.ptp(y_b) == 0:
+        return {"not_computable": "the label has one value over domain B's rows, so R^2 on B is undefined"}
     if kind == "regression":  # the same scaling as A's (see _labels)
         y_b = y_b / max(float(np.max(np.abs(values_a[idx_a].astype(np.float64)))), np.finfo(float).tiny)
     ga = groups_a[idx_a]
@@ -464,8 +486,10 @@ def _unpaired_one(a, b, values_a, values_b, groups_a, groups_b, seed, test_fract
     point = {"clean": _score(kind, y_a[test], parts["a"][1]["model"]),
              "cluttered": _score(kind, y_b, parts["b"][1]["model"]),
              "baseline": _score(kind, y_a[test], parts["a"][1]["baseline"])}
-    gaps, margins = _unpaired_resamples(kind, parts, seed, resamples)
+    gaps, margins, b_scores = _unpaired_resamples(kind, parts, seed, resamples)
     m = max(2, min(int(parts["a"][2].max()) + 1, int(parts["b"][2].max()) + 1))
+    cluttered_ci, cluttered_ci_method = _b_score_interval(kind, b_scores, point["cluttered"],
+                                                          int(parts["b"][2].max()) + 1, int(idx_b.size))
     symmetric = kind == "regression"
     gap_ci = _interval(gaps, point["clean"] - point["cluttered"], m, symmetric)
     decodable = bool(_interval(margins, point["clean"] - point["baseline"], m, symmetric)[0] > 0)
@@ -474,7 +498,8 @@ def _unpaired_one(a, b, values_a, values_b, groups_a, groups_b, seed, test_fract
            "gap_ci": list(gap_ci), "ci_method": "cluster bootstrap, held-out groups of A and groups of B resampled "
            f"independently, expanded percentile, {resamples} resamples, 95%",
            "baseline": point["baseline"], "decodable": decodable, "n_train": int(train.size),
-           "n_test": int(test.size), "n_test_b": int(idx_b.size), "trained_on": "A"}
+           "n_test": int(test.size), "n_test_b": int(idx_b.size), "trained_on": "A",
+           "cluttered_ci": cluttered_ci, "cluttered_ci_method": cluttered_ci_method}
     out["note"] = note if decodable else f"{note}; {NOT_DECODABLE}"
     return out
 
@@ -504,7 +529,11 @@ def unpaired_probes(a, b, tasks_a, tasks_b, *, groups_a=None, groups_b=None, see
     -------
     dict of str to dict
         Per shared label the keys of :func:`linear_probes` (``clean`` = held-out A,
-        ``cluttered`` = B) plus ``n_test_b`` and ``trained_on``; or not computable.
+        ``cluttered`` = B; ``n_test`` counts A's held-out rows) plus ``n_test_b`` (B's
+        labelled rows, all scored), ``trained_on`` ("A"), ``cluttered_ci`` (95% interval
+        of B's score: a cluster bootstrap over B's groups, for accuracy widened to contain
+        the exact Clopper-Pearson interval over B's ``n_test_b`` rows; Clopper & Pearson,
+        Biometrika 26, 1934) and ``cluttered_ci_method``; or not computable.
     """
     for name, tasks in (("tasks_a", tasks_a), ("tasks_b", tasks_b)):
         if not isinstance(tasks, dict):
