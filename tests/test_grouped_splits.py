@@ -157,3 +157,20 @@ def test_a_paired_folder_with_an_episode_column_is_scored_by_episode(tmp_path, o
     assert result["dataset"]["groups"] == 10
     probe = result["metrics"]["probe"]["part"]
     assert "grouped by episode" in probe["note"]
+
+
+def test_group_codes_are_stable_so_names_and_codes_give_the_same_p_value():
+    """check_groups applied to its own output changes nothing (common practice: an encoding
+    is idempotent), so score_features, which encodes the groups before the domain classifier
+    encodes them again, gives the p-value a caller gets with the names."""
+    from invariance.metrics.domain import check_groups, domain_classifier
+
+    codes = np.arange(12)
+    np.testing.assert_array_equal(check_groups(codes, 12), codes)
+    rng = np.random.default_rng(0)
+    a = rng.standard_normal((60, 4))
+    b = a + 0.3 * rng.standard_normal((60, 4))
+    names = np.repeat([f"ep{i:02d}" for i in range(12)], 5)
+    by_name = domain_classifier(a, b, permutations=99, groups=names)["p_value"]
+    by_code = domain_classifier(a, b, permutations=99, groups=check_groups(names, 60))["p_value"]
+    assert by_name == by_code

@@ -154,7 +154,11 @@ def check_groups(groups, n, *, what="pairs"):
             f"groups has shape {values.shape}; it needs one group label per {what[:-1]} ({n},): "
             f"give the episode of each row, in the order of the features"
         )
-    _, codes = np.unique(values.astype(str), return_inverse=True)
+    # Whole numbers keep their numeric order, so codes passed back in come out unchanged and
+    # the same data give the same folds (and p-values) whether names or codes are passed;
+    # as text, 10 would sort before 2.
+    keys = values if values.dtype.kind in "iub" else values.astype(str)
+    _, codes = np.unique(keys, return_inverse=True)
     return codes.astype(np.intp)
 
 

@@ -51,7 +51,7 @@ def accuracy_cell(metrics: dict) -> dict:
         return missing_cell(reason or "not reported")
     interval = ci(metrics, "domain_classifier", "ci")
     reading = readings.read_domain_accuracy(accuracy, interval, small_sample=bool(found.get("small_sample")),
-                                            pairs=readings.domain_pairs(found))
+                                            sample=readings.domain_sample(found))
     return cell(readings.format_number(accuracy), reading, readings.format_interval(interval))
 
 
