@@ -153,3 +153,27 @@ def test_too_few_groups_stop_before_any_encoder_and_write_nothing(tmp_path):
     assert run.exit_code == 1 and not out.exists()
     lines = run.stderr.strip().splitlines()
     assert len(lines) == 1 and "domain A has 12 rows in 3 groups; need at least 10 rows and 5 groups" in lines[0]
+
+
+def test_a_stride_longer_than_an_image_domain_is_refused_before_any_encoder_loads(tmp_path, monkeypatch):
+    """Each image of an image folder is one frame, so --stride 2 keeps nothing of it: the
+    command says so before loading an encoder (common practice: fail before the slow work)."""
+    from PIL import Image
+
+    import invariance.encoders as encoders
+
+    for domain in ("a", "b"):
+        (tmp_path / domain).mkdir()
+        for i in range(3):
+            Image.new("RGB", (32, 32), (i * 40, 0, 0)).save(tmp_path / domain / f"img_{domain}{i}.png")
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("the encoder was loaded")
+
+    monkeypatch.setattr(encoders, "load_encoder", refuse)
+    res = CliRunner().invoke(cli, ["compare", f"images:{tmp_path / 'a'}", f"images:{tmp_path / 'b'}", "--unpaired",
+                                   "--stride", "2", "--encoder", "python:invariance.zoo:clean_only_encoder",
+                                   "--json", str(tmp_path / "out.json")])
+    assert res.exit_code == 1, res.output
+    assert "fewer than the stride 2" in res.output and "one frame" in res.output
+    assert not (tmp_path / "out.json").exists()

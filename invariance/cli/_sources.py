@@ -68,23 +68,25 @@ def domain_arguments(data, sources) -> tuple:
         return data[0], data[1]
     folder = data[0]
     if _names_a_source(folder):
-        raise click.UsageError(f"{folder} names one source; give two domains (DATA_A DATA_B) to compare sources")
+        raise click.UsageError(f"{folder} names one source; give two domains (DATA_A DATA_B): a source is "
+                               f"scored against another source")
     if sources.unpaired and not _has_views(Path(folder)):
         raise click.UsageError(f"--unpaired with one DATA compares its clean/ and cluttered/ images; {folder} has "
                                f"no clean/ and cluttered/ folders: give a data folder or two domains (DATA_A DATA_B)")
-    if _frame_flags_given(sources) and not (sources.unpaired or unpaired_layout(folder)):
+    if frame_flags_given(sources) and not (sources.unpaired or unpaired_layout(folder)):
         raise click.UsageError(f"{_DOMAIN_FLAGS} apply to two domains (DATA_A DATA_B, or one folder with "
                                f"--unpaired); a paired data folder scores every pair")
     return folder, None
 
 
-def _frame_flags_given(sources) -> bool:
+def frame_flags_given(sources) -> bool:
+    """Whether a frame option (--stride, --max-frames-per-episode, --label) was given; --unpaired is not one."""
     return sources.stride != 1 or sources.max_frames_per_episode is not None or bool(sources.labels)
 
 
 def domain_flags_given(sources) -> bool:
     """Whether any source option was given (``--unpaired`` or a frame option)."""
-    return sources.unpaired or _frame_flags_given(sources)
+    return sources.unpaired or frame_flags_given(sources)
 
 
 def unpaired_layout(folder) -> bool:
@@ -131,8 +133,19 @@ def check_domains(data_a, data_b, sources, folds) -> str:
     from ..sources import expected_frames, match_domains, open_source
 
     domains = match_domains(open_source(str(data_a), sources), open_source(str(data_b), sources), sources)
+    for source in (domains.a, domains.b):  # an episode shorter than the stride fails now, not after loading
+        for episode in source.episodes:
+            if episode.n_frames is not None:
+                sources.frame_indices(episode.n_frames, _episode_label(source, episode))
     if domains.mode == "unpaired":
         for label, source in (("A", domains.a), ("B", domains.b)):
             groups = {episode.group for episode in source.episodes}
             check_unpaired_size(label, expected_frames(source, sources), len(groups), folds)
     return domains.mode
+
+
+def _episode_label(source, episode) -> str:
+    # an image folder's episodes are single images: say so, since --stride then keeps nothing
+    if getattr(source, "kind", None) == "images":
+        return f"{episode.name} (an image in {source.path}: one frame)"
+    return episode.name

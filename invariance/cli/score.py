@@ -8,8 +8,8 @@ from pathlib import Path
 import click
 
 from ._print import print_summary
-from ._sources import (check_domains, compared_domains, domain_arguments, domain_flags_given, source_inputs,
-                       source_options)
+from ._sources import (check_domains, compared_domains, domain_arguments, domain_flags_given, frame_flags_given,
+                       source_inputs, source_options)
 from ._shared import (EXIT_CODES_HELP, check_outputs, say, encoder_option, extraction_options, gate_options,
                       handle_errors, json_option, quiet_option, report_option, scoring_options, weights_option,
                       write_result_outputs)
@@ -173,7 +173,7 @@ def _inputs(data, spec, features, sources, extraction):
 
 def _frame_options_given(sources) -> bool:
     """Whether a frame option (--stride, --max-frames-per-episode, --label) was given; --unpaired is not one."""
-    return domain_flags_given(replace(sources, unpaired=False))
+    return frame_flags_given(sources)
 
 
 def _announce_domains(data_a, data_b, domains, sources, scoring, quiet) -> None:
