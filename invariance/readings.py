@@ -613,3 +613,14 @@ def describe_metrics(metrics: dict, *, pairs: int | None = None) -> list[Row]:
     for label, probe in probes.items():
         rows.append(_not_computable(f"probe {label}", probe) or _probe_row(label, probe))
     return rows
+
+
+def subgroup_size(group) -> str:
+    """A breakdown subgroup's size in words: its pairs, or ``"16 / 16 rows"`` (A / B) for
+    unpaired domains; the terminal and the report both show it."""
+    if not isinstance(group, dict):
+        return DASH
+    rows = group.get("rows")
+    if "pairs" not in group and isinstance(rows, list) and len(rows) == 2:
+        return f"{rows[0]} / {rows[1]} rows"
+    return str(group.get("pairs", DASH))

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from scipy.stats import binom
+from nulls import rejection_band
 
 from invariance.metrics.domain import domain_classifier, paired_folds
 from invariance.metrics.mmd import paired_permutation_test
@@ -34,12 +34,6 @@ def episode_null(episodes, frames, d, rng, *, episode_sd=1.0, frame_sd=0.3, shif
     views[1][:, :, : d // 4] += shift
     groups = np.repeat(np.arange(episodes), frames)
     return views[0].reshape(-1, d), views[1].reshape(-1, d), groups
-
-
-def binomial_band(n, p=ALPHA, level=0.99):
-    """Central binomial interval of the rejection count (scipy.stats.binom, exact)."""
-    low, high = binom.interval(level, n, p)
-    return low / n, high / n
 
 
 @settings(max_examples=40, deadline=None)
@@ -87,7 +81,7 @@ def test_grouped_tests_are_calibrated_and_frame_level_tests_are_not(one_torch_th
     # splits and swaps must reject above it. Permutation p-values are exact (Ojala &
     # Garriga, JMLR 11, 2010; Phipson & Smyth 2010), so P(p <= 0.05) <= 0.05.
     reps = 120
-    low, high = binomial_band(reps)
+    low, high = rejection_band(reps, ALPHA)
     grouped = _rejections(True, reps, seed=1)
     frame_level = _rejections(False, reps, seed=1)
     for name in ("domain", "mmd"):

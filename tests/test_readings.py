@@ -282,3 +282,11 @@ def test_an_inconclusive_unpaired_probe_names_held_out_rows_of_a_and_the_rows_of
     assert reading.words.startswith("inconclusive (18 held-out rows of A and 40 rows of B; the interval reaches")
     row = describe_metrics({"probe": {"x": probe}})[0]
     assert "trained on domain A" in row[3] and "on the rows of B" in row[3] and "same scenes" not in row[3]
+
+
+def test_subgroup_size_names_pairs_or_the_rows_of_each_unpaired_domain():
+    from invariance.readings import DASH, subgroup_size
+
+    assert subgroup_size({"pairs": 12, "metrics": {}}) == "12"
+    assert subgroup_size({"rows": [16, 20], "groups": [4, 5], "metrics": {}}) == "16 / 20 rows"
+    assert subgroup_size(None) == DASH

@@ -13,7 +13,8 @@ from invariance.metrics.probe import unpaired_probes
 from invariance.options import ScoringOptions
 from invariance.scoring import score_unpaired_features
 
-from test_grouped_splits import ALPHA, binomial_band
+from nulls import rejection_band
+from test_grouped_splits import ALPHA
 
 
 def episodes(n_episodes, frames, d, rng, *, shift=0.0, episode_sd=1.0, frame_sd=0.3):
@@ -77,7 +78,7 @@ def test_unpaired_tests_are_calibrated_by_group_and_inflated_by_frame():
     # inside the exact binomial 99% band (scipy.stats.binom); frame-level permutations of
     # episode-correlated frames reject above it.
     reps = 100
-    low, high = binomial_band(reps)
+    low, high = rejection_band(reps, ALPHA)
     grouped = _unpaired_rejections(True, reps, seed=2)
     frames = _unpaired_rejections(False, reps, seed=2)
     for name in ("domain", "mmd"):

@@ -61,6 +61,7 @@ def print_gates(gates) -> None:
 
 def print_breakdowns(breakdowns) -> None:
     """One line per factor: domain accuracy and mean relative drift at each value (dose-response)."""
+    from ..readings import subgroup_size
     from ..results import metric_value
 
     for column, groups in breakdowns.items():
@@ -74,16 +75,6 @@ def print_breakdowns(breakdowns) -> None:
             cells.append(f"{value}: acc {acc}, drift {drift} (n={subgroup_size(group)})")
         off = " (0 = this factor off, the others on)" if str(column).startswith("factor_") else ""
         say(f"by {column}{off}: " + "; ".join(cells))
-
-
-def subgroup_size(group) -> str:
-    """A breakdown subgroup's size: its pairs, or the rows of A/B of unpaired domains."""
-    if not isinstance(group, dict):
-        return "?"
-    rows = group.get("rows")
-    if "pairs" not in group and isinstance(rows, list) and len(rows) == 2:
-        return f"{rows[0]}/{rows[1]} rows"
-    return str(group.get("pairs", "?"))
 
 
 def print_ranking(comparison) -> None:

@@ -165,15 +165,11 @@ def _inputs(data, spec, features, sources, extraction):
         return data_a, data_b, compared_domains(data_a, data_b, sources), sources
     if data or spec is not None:
         raise click.UsageError("--features replaces DATA and --encoder; give one or the other")
-    if _frame_options_given(sources):
+    if frame_flags_given(sources):
         raise click.UsageError("--stride, --max-frames-per-episode and --label read frames of two domains; "
                                "they do not apply to --features (give --unpaired alone for unpaired rows)")
     return None, None, None, sources
 
-
-def _frame_options_given(sources) -> bool:
-    """Whether a frame option (--stride, --max-frames-per-episode, --label) was given; --unpaired is not one."""
-    return frame_flags_given(sources)
 
 
 def _announce_domains(data_a, data_b, domains, sources, scoring, quiet) -> None:

@@ -269,20 +269,12 @@ def _breakdowns(result: dict) -> dict | None:
             metrics = group.get("metrics") or {}
             off = factor != "level" and str(level) == "0"
             shown = f"{level} (this factor off, the others on)" if off else str(level)
-            rows.append({"factor": str(factor), "level": shown, "pairs": _subgroup_size(group),
+            rows.append({"factor": str(factor), "level": shown, "pairs": readings.subgroup_size(group),
                          "cells": [cells.accuracy_cell(metrics), cells.drift_cell(metrics), cells.cka_cell(metrics),
                                    _adjusted_cell(metrics)]})
     return {"figures": [f for f in figures if f is not None], "rows": rows,
             "correction": _correction(result.get("breakdowns_correction")),
             "skipped": _skipped(result.get("breakdowns_skipped"))}
-
-
-def _subgroup_size(group: dict) -> str:
-    """Pairs of a subgroup, or the rows of A / B of unpaired domains."""
-    rows = group.get("rows")
-    if "pairs" not in group and isinstance(rows, list) and len(rows) == 2:
-        return f"{rows[0]} / {rows[1]} rows"
-    return str(group.get("pairs", readings.DASH))
 
 
 def _adjusted_cell(metrics: dict) -> dict:
