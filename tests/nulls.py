@@ -193,8 +193,9 @@ def recorded_domains(episodes, frames, seed, *, size=EPISODE_SIDE, clutter=False
     return out
 
 
-def _write_video(path, frames, fps=10):
-    """Motion-JPEG in AVI (PyAV): every frame coded alone, near the written pixels."""
+def write_video(path, frames, fps=10):
+    """Motion-JPEG in AVI (PyAV): every frame is coded alone, so the pixels stay near the
+    written ones and a damaged file fails at a known frame. Returns ``path``."""
     import av
 
     with av.open(str(path), "w") as container:
@@ -203,6 +204,7 @@ def _write_video(path, frames, fps=10):
         for image in frames:
             container.mux(stream.encode(av.VideoFrame.from_ndarray(image, format="rgb24")))
         container.mux(stream.encode())
+    return path
 
 
 def write_recordings(kind, path, recordings):
@@ -234,7 +236,7 @@ def write_recordings(kind, path, recordings):
     if kind == "video":
         path.mkdir(parents=True)
         for name, frames in recordings:
-            _write_video(path / f"{name}.avi", frames)
+            write_video(path / f"{name}.avi", frames)
         return f"video:{path}"
     raise ValueError(f"unknown kind {kind!r}; choose one of {FILE_KINDS}")
 

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import json
 
-import av
 import numpy as np
 import pytest
 from click.testing import CliRunner
@@ -13,21 +12,8 @@ from invariance.cli import cli
 from invariance.errors import InvarianceError
 from invariance.sources import SourceOptions, iter_frames, match_domains, open_source
 
+from nulls import write_video
 from test_sources_hdf5 import SMALL_ENCODER, bench_frames
-
-
-def write_video(path, frames):
-    """Motion-JPEG in AVI: every frame is coded alone, so a damaged file fails at a known frame."""
-    container = av.open(str(path), "w")
-    stream = container.add_stream("mjpeg", rate=10)
-    stream.width, stream.height, stream.pix_fmt = frames.shape[2], frames.shape[1], "yuvj420p"
-    for img in frames:
-        for packet in stream.encode(av.VideoFrame.from_ndarray(img, format="rgb24")):
-            container.mux(packet)
-    for packet in stream.encode():
-        container.mux(packet)
-    container.close()
-    return path
 
 
 def write_videos(folder, episodes=10, frames=12, clutter=False):
