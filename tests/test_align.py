@@ -308,9 +308,10 @@ def test_guard_allows_noise_but_stops_a_real_fall():
     # 0.9 -> 0.85 on 50 images is inside sampling noise; 0.9 -> 0.6 is not.
     assert _guard_failure({"part": 0.9}, {"part": 0.85}, 0.05, kinds, 50) is None
     assert "part" in _guard_failure({"part": 0.9}, {"part": 0.6}, 0.05, kinds, 50)
-    # A regression R^2 uses the relative margin alone: 0.8 -> 0.77 passes, 0.8 -> 0.75 stops.
-    assert _guard_failure({"x": 0.8}, {"x": 0.77}, 0.05, kinds, 50) is None
-    assert "x" in _guard_failure({"x": 0.8}, {"x": 0.75}, 0.05, kinds, 50)
+    # A regression R^2 of 0.8 on 50 images has a sampling noise of 1.96 * sqrt(2 * 4 * 0.8 *
+    # 0.2^2 / 50) = 0.140 (Olkin & Finn 1995): 0.8 -> 0.70 passes, 0.8 -> 0.60 stops.
+    assert _guard_failure({"x": 0.8}, {"x": 0.70}, 0.05, kinds, 50) is None
+    assert "x" in _guard_failure({"x": 0.8}, {"x": 0.60}, 0.05, kinds, 50)
     # A regression probe that started uninformative (R^2 <= 0) is not guarded.
     assert _guard_failure({"x": -0.2}, {"x": -0.9}, 0.05, kinds, 50) is None
 
@@ -322,10 +323,30 @@ def test_guard_ignores_a_regression_probe_within_noise_of_zero():
     kinds = {"angle": "regression"}
     # An R^2 of 0.05 on 52 pairs is noise: not guarded, whatever it falls to.
     assert _guard_failure({"angle": 0.05}, {"angle": -0.5}, 0.05, kinds, 52) is None
-    # A weak but real probe: R^2 = 1 - MSE / var, so MSE x 1.05 lowers R^2 0.3 by
-    # 0.05 * 0.7 = 0.035, looser than 5% of 0.3 (0.015): 0.3 -> 0.28 passes, 0.3 -> 0.25 stops.
-    assert _guard_failure({"angle": 0.3}, {"angle": 0.28}, 0.05, kinds, 52) is None
-    assert "angle" in _guard_failure({"angle": 0.3}, {"angle": 0.25}, 0.05, kinds, 52)
+    # A weak but real probe on 52 images is noisy: 1.96 * sqrt(8 * 0.3 * 0.7^2 / 52) = 0.295
+    # (Olkin & Finn 1995), so 0.3 -> 0.05 passes. On 2000 images the noise is 0.048 and
+    # the relative margin rules: R^2 = 1 - MSE / var, so MSE x 1.05 lowers R^2 0.3 by
+    # 0.05 * 0.7 = 0.035 (looser than 5% of 0.3): 0.3 -> 0.26 passes, 0.3 -> 0.24 stops.
+    assert _guard_failure({"angle": 0.3}, {"angle": 0.05}, 0.05, kinds, 52) is None
+    assert _guard_failure({"angle": 0.3}, {"angle": 0.26}, 0.05, kinds, 2000) is None
+    assert "angle" in _guard_failure({"angle": 0.3}, {"angle": 0.24}, 0.05, kinds, 2000)
+
+
+def test_r2_noise_matches_the_spread_of_simulated_r2():
+    # Reference: the large-sample variance of a sample R^2, 4 rho^2 (1 - rho^2)^2 / n
+    # (Olkin & Finn, Psychological Bulletin 118 (1995) 155-164, from memory), checked here
+    # against a simulation: the spread of the squared correlation over 4000 samples of 200
+    # bivariate normal pairs with rho^2 = 0.5. _r2_noise is 1.96 * sqrt(2) of that spread.
+    from invariance.align.monitor import _r2_noise
+
+    rng = np.random.default_rng(0)
+    rho, n = np.sqrt(0.5), 200
+    x = rng.standard_normal((4000, n))
+    y = rho * x + np.sqrt(1 - rho**2) * rng.standard_normal((4000, n))
+    xc, yc = x - x.mean(1, keepdims=True), y - y.mean(1, keepdims=True)
+    r2 = (xc * yc).sum(1) ** 2 / ((xc**2).sum(1) * (yc**2).sum(1))
+    assert _r2_noise(0.5, n) / (1.96 * np.sqrt(2)) == pytest.approx(r2.std(), rel=0.1)
+    assert _r2_noise(0.0, n) == 0.0 and _r2_noise(1.0, n) == 0.0
 
 
 def _identity_run(clean, cluttered):
@@ -815,6 +836,18 @@ def test_outcome_is_judged_on_held_out_figures():
     assert not ok and "part" in reason
     # The same fall on a task the encoder does not carry does not count.
     assert judge(metrics(0.9, 1.0, 0.95), metrics(0.7, 0.5, 0.70), [], 0.05, 90)[0]
+    # The noise allowance counts the images the probe was scored on (its n_test), not the
+    # held-out pairs: 0.80 -> 0.70 is beyond 1.96 * sqrt(2 * 0.8 * 0.2 / 180) = 0.083 but
+    # inside 1.96 * sqrt(2 * 0.8 * 0.2 / 54) = 0.151 (two-proportion z, common practice).
+    def scored(part, n_test):
+        out = metrics(0.6, 1.0, part)
+        out["probe"]["part"]["n_test"] = n_test
+        return out
+
+    assert not judge(scored(0.8, 180), {**scored(0.7, 180), "paired_drift": {"relative_drift": 0.5}},
+                     ["part"], 0.05, 180)[0]
+    assert judge(scored(0.8, 54), {**scored(0.7, 54), "paired_drift": {"relative_drift": 0.5}},
+                 ["part"], 0.05, 180)[0]
 
 
 @pytest.mark.parametrize("objective, zero", [("dann", {"paired", "mean"}), ("paired", {"domain"}), ("combined", set())])

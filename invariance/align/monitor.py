@@ -145,16 +145,37 @@ def _informative_r2(n_val: int) -> float:
     return t * t / (t * t + n_val - 2)
 
 
+def _r2_noise(start: float, n: int) -> float:
+    """1.96 standard errors of a difference of two R^2 values on ``n`` images each.
+
+    The large-sample variance of a sample R^2 is ``4 rho^2 (1 - rho^2)^2 / n`` (Olkin &
+    Finn, Psychological Bulletin 118 (1995) 155-164, from memory); the difference of two
+    independent estimates has twice that variance. ``rho^2`` is taken as ``start``
+    clipped to [0, 1].
+    """
+    r2 = min(max(start, 0.0), 1.0)
+    return _Z_95 * math.sqrt(2.0 * 4.0 * r2 * (1.0 - r2) ** 2 / max(n, 1))
+
+
 def _allowed_fall(start: float, kind: str, margin: float, n_val: int) -> float:
+    """How far a clean probe may fall below ``start`` before it counts as fallen.
+
+    ``margin`` (relative), or the sampling noise of the score on ``n_val`` images,
+    whichever is larger: a fall the images cannot tell from noise does not stop a run
+    nor fail the held-out judgement.
+    """
     fall = margin * abs(start)
     if kind == "classification":
-        # Only a fall the slice can tell from sampling noise: 1.96 standard errors of a
-        # difference of two accuracies on n_val images (two-proportion z, common practice).
+        # 1.96 standard errors of a difference of two accuracies on n_val images
+        # (two-proportion z, common practice).
         return max(fall, _Z_95 * math.sqrt(2.0 * start * (1.0 - start) / n_val))
     # R^2 = 1 - MSE / variance, so the error rising by ``margin`` (relative) lowers R^2 by
     # margin * (1 - R^2). Either reading of "margin" may apply: for a weak probe a fall of
-    # margin times the score itself would stop training over the third decimal.
-    return max(fall, margin * (1.0 - start))
+    # margin times the score itself would stop training over the third decimal. A probe
+    # that explains little of its label on a few dozen images is noisy far beyond either:
+    # its sampling noise applies as for an accuracy (a task carried only just above the
+    # floor stopped every run on the panel's Sequential CNN, docs/alignment.md).
+    return max(fall, margin * (1.0 - start), _r2_noise(start, n_val))
 
 
 def _guard_failure(start: dict, now: dict, margin: float, kinds: dict, n_val: int) -> str | None:

@@ -24,8 +24,9 @@ def judge(before: dict, after: dict, carried: list[str], margin: float, n_pairs:
     rise beyond sampling noise (1.96 standard errors of a difference of two accuracies on
     ``n_pairs`` pairs per view, two-proportion z, common practice), and every task the
     encoder carries kept its clean probe within the guard's
-    allowance (``margin`` relative, or sampling noise of an accuracy on ``n_pairs``
-    pairs; see :func:`invariance.align.monitor._allowed_fall`).
+    allowance (``margin`` relative, or the sampling noise of the probe's score on the
+    images it was scored on, its ``n_test``; see
+    :func:`invariance.align.monitor._allowed_fall`).
 
     Parameters
     ----------
@@ -57,7 +58,9 @@ def judge(before: dict, after: dict, carried: list[str], margin: float, n_pairs:
         if "clean" not in p0 or "clean" not in p1:
             continue
         kind = p0.get("kind", "classification")
-        if p0["clean"] - p1["clean"] > _allowed_fall(p0["clean"], kind, margin, n_pairs):
+        # the probe is scored on its own test split of the held-out pairs, not on all of them
+        n_scored = int(p0.get("n_test") or n_pairs)
+        if p0["clean"] - p1["clean"] > _allowed_fall(p0["clean"], kind, margin, n_scored):
             return False, f"held-out clean probe {task!r} fell ({p0['clean']:.3f} -> {p1['clean']:.3f})"
     return True, (f"held-out relative drift {drift0:.3f} -> {drift1:.3f}, domain accuracy {acc0:.3f} -> {acc1:.3f}, "
                   "carried clean probes kept")
