@@ -113,8 +113,10 @@ DEFAULT_LEARNING_RATE = 1e-3
 DEFAULT_GUARD_MARGIN = 0.05
 DEFAULT_HELD_OUT_FRACTION = 0.3
 # The alignment objectives (docs/alignment.md, "Objectives side by side"): gradient reversal
-# alone (DANN, Ganin et al., JMLR 2016), the paired and mean-matching terms alone, or both.
-OBJECTIVES = ("combined", "dann", "paired")
+# alone (DANN, Ganin et al., JMLR 2016), the paired and mean-matching terms alone, or both;
+# or the teacher pull (each cluttered view onto the original encoder's clean feature, with
+# the task heads on both views).
+OBJECTIVES = ("combined", "dann", "paired", "teacher")
 DEFAULT_OBJECTIVE = "combined"
 
 
@@ -144,8 +146,11 @@ class AlignmentOptions:
         Pairs per training step (both views).
     objective : str, default='combined'
         ``"combined"`` (gradient reversal plus the paired and mean-matching terms),
-        ``"dann"`` (gradient reversal only) or ``"paired"`` (the paired and mean-matching
-        terms only); the anchor and the task heads are in all three.
+        ``"dann"`` (gradient reversal only), ``"paired"`` (the paired and mean-matching
+        terms only) or ``"teacher"`` (each cluttered view pulled onto the original
+        encoder's clean feature of its pair, the task heads reading both views, constant
+        learning rate; no adversary, no mean term); the anchor and the task heads are in
+        all four.
     """
 
     steps: int = DEFAULT_STEPS

@@ -445,6 +445,76 @@ def test_mean_term_follows_the_dann_ramp():
         assert float(with_mean["total"]) == pytest.approx(expected, rel=1e-5)
 
 
+def _teacher_run(clean, cluttered, labels, head):
+    n = len(clean)
+    task = {"name": "part", "kind": "classification", "target": torch.as_tensor(labels),
+            "mask": torch.ones(n, dtype=torch.bool), "head": head}
+    run = _Run(nn.Identity(), clean, cluttered, np.arange(n - 4), np.arange(n - 4, n), [task],
+               (torch.zeros(clean.shape[1]), 1.0), 0)
+    run.objective = "teacher"
+    return run
+
+
+def test_teacher_term_pulls_cluttered_views_onto_the_original_clean_features():
+    # Reference (numpy): the mean over pairs and features of (cluttered - original clean)^2
+    # divided by each feature's clean variance (unbiased, over the training pairs), floored
+    # at 1e-3 of the mean variance (common practice for variance floors).
+    rng = np.random.default_rng(5)
+    clean = rng.normal(size=(20, 4)) * np.array([1.0, 2.0, 0.5, 1e-5])
+    cluttered = clean + rng.normal(size=(20, 4))
+    head = nn.Linear(4, 3)
+    run = _teacher_run(torch.tensor(clean, dtype=torch.float32), torch.tensor(cluttered, dtype=torch.float32),
+                       rng.integers(0, 3, 20), head)
+    variance = clean[:16].var(axis=0, ddof=1)
+    variance = np.maximum(variance, 1e-3 * variance.mean())
+    batch = np.array([0, 2, 5, 11])
+    expected = ((cluttered[batch] - clean[batch]) ** 2 / variance).mean()
+    weights = {"domain": 0.0, "anchor": 1.0, "task": 1.0, "paired": 1.0, "mean": 0.0}
+    assert float(run.losses(batch, 0.0, weights)["paired"]) == pytest.approx(expected, rel=1e-4)
+
+
+def test_teacher_task_term_reads_both_views_and_trains_heads_on_clean_only():
+    # Reference: scikit-learn's log_loss (cross-entropy) of the head's softmax on each view;
+    # the task term is their sum. The cluttered view's part moves features, not the head:
+    # its gradient with respect to the head's weights is zero (common practice for a held
+    # teacher head).
+    from scipy.special import softmax
+    from sklearn.metrics import log_loss
+
+    rng = np.random.default_rng(6)
+    clean = rng.normal(size=(20, 4))
+    cluttered = clean + rng.normal(size=(20, 4))
+    labels = np.arange(20) % 3
+    head = nn.Linear(4, 3)
+    c = torch.tensor(clean, dtype=torch.float32)
+    u = torch.tensor(cluttered, dtype=torch.float32, requires_grad=True)
+    run = _teacher_run(c, u, labels, head)
+    batch = np.arange(8)
+    weights = {"domain": 0.0, "anchor": 1.0, "task": 1.0, "paired": 0.0, "mean": 0.0}
+    w, b = head.weight.detach().numpy(), head.bias.detach().numpy()
+    expected = sum(log_loss(labels[batch], softmax(x[batch] @ w.T + b, axis=1), labels=[0, 1, 2])
+                   for x in (clean, cluttered))
+    parts = run.losses(batch, 0.0, weights)
+    assert float(parts["task"].detach()) == pytest.approx(expected, rel=1e-4)
+    # Held heads: with the clean view's term removed, the head gets no gradient.
+    run.tasks[0]["mask"] = torch.zeros(20, dtype=torch.bool)
+    run.tasks[0]["mask"][batch] = True
+    from invariance.align.heads import _task_loss
+
+    held = _task_loss(run.tasks, u[batch], torch.as_tensor(batch), hold_heads=True)
+    held.backward()
+    assert head.weight.grad is None and u.grad is not None and float(u.grad.abs().sum()) > 0
+
+
+def test_teacher_objective_keeps_a_constant_learning_rate():
+    # DANN's annealing lr / (1 + 10 p) ** 0.75 (Ganin et al., JMLR 2016, sec. 5.2.2) ends at
+    # 11 ** -0.75 = 0.166 of the start; the teacher objective has no adversary and keeps lr.
+    from invariance.align.loop import learning_rate
+
+    assert learning_rate(AlignmentOptions(objective="teacher"), 1.0) == pytest.approx(1e-3)
+    assert learning_rate(AlignmentOptions(), 1.0) == pytest.approx(1e-3 * 11 ** -0.75)
+
+
 # ---------------------------------------------------------------- end to end (small)
 
 
@@ -850,7 +920,8 @@ def test_outcome_is_judged_on_held_out_figures():
                  ["part"], 0.05, 180)[0]
 
 
-@pytest.mark.parametrize("objective, zero", [("dann", {"paired", "mean"}), ("paired", {"domain"}), ("combined", set())])
+@pytest.mark.parametrize("objective, zero", [("dann", {"paired", "mean"}), ("paired", {"domain"}), ("combined", set()),
+                                             ("teacher", {"domain", "mean"})])
 def test_objectives_switch_the_terms(objective, zero):
     from invariance.align.loop import objective_weights
 

@@ -24,7 +24,8 @@ import torch
 from torch import nn
 
 from .heads import _task_loss
-from .losses import anchor_loss, domain_loss, mean_matching_loss, paired_drift_loss, whitening
+from .losses import (anchor_loss, domain_loss, mean_matching_loss, paired_drift_loss, paired_loss, paired_variance,
+                     whitening)
 from .monitor import _guard_failure, check_slice
 from .reversal import dann_lambda, dann_learning_rate, make_discriminator
 from .trunk import tail_features
@@ -59,6 +60,9 @@ class _Run:
         through local generators; the caller's global random state is not touched.
     """
 
+    # Set by the caller for the ``teacher`` objective (see losses).
+    objective = "combined"
+
     def __init__(self, tail, act_clean, act_cluttered, train_pos, val_pos, tasks, head_input, seed):
         self.tail, self.act_clean, self.act_cluttered = tail, act_clean, act_cluttered
         self.train_pos, self.val_pos, self.tasks = train_pos, val_pos, tasks
@@ -67,6 +71,7 @@ class _Run:
         f0_train = self.f0_clean[train_pos]
         self.scale = f0_train.var(dim=0).mean().clamp_min(1e-12)
         self.whitening = whitening(f0_train)
+        self.variance = paired_variance(f0_train)
         # The discriminator reads features standardised by the original clean training
         # features, so its gradients do not depend on the encoder's feature scale.
         self.standardise = (f0_train.mean(dim=0), f0_train.std(dim=0).clamp_min(1e-6 * float(self.scale) ** 0.5))
@@ -106,9 +111,19 @@ class _Run:
         parts["domain"], parts["discriminator_accuracy"] = domain_loss(
             self.discriminator, (f_clean - mu) / sd, (f_clut - mu) / sd, lambda_)
         parts["anchor"] = anchor_loss(f_clean, self.f0_clean[batch], self.scale)
-        head_features = (f_clean - self.head_input[0]) / self.head_input[1]
-        parts["task"] = _task_loss(self.tasks, head_features, torch.as_tensor(batch))
-        parts["paired"] = paired_drift_loss(f_clean, f_clut)
+        positions = torch.as_tensor(batch)
+        parts["task"] = _task_loss(self.tasks, (f_clean - self.head_input[0]) / self.head_input[1], positions)
+        if self.objective == "teacher":
+            # The teacher pull: each cluttered view onto the original encoder's clean feature
+            # of its pair, per feature in units of its clean spread (losses.paired_loss), and
+            # the clean heads, held, reading the cluttered view too (a pair's views share
+            # its labels). Scale-free: standardised features, standardised targets.
+            parts["paired"] = paired_loss(self.f0_clean[batch], f_clut, self.variance)
+            held = _task_loss(self.tasks, (f_clut - self.head_input[0]) / self.head_input[1], positions,
+                              hold_heads=True)
+            parts["task"] = parts["task"] + held
+        else:
+            parts["paired"] = paired_drift_loss(f_clean, f_clut)
         parts["mean"] = mean_matching_loss(f_clean, f_clut, self.whitening) / self.norms["mean"]
         # The mean term is an adaptation loss like the domain term, so it follows the same
         # lambda_p ramp: at full weight from step 0 its early gradients, while the means are
@@ -168,14 +183,28 @@ def progress_line(curves: dict, steps: int) -> str:
 
 
 def objective_weights(options) -> dict:
-    """Loss weights of ``options.objective``: reversal only, paired + mean only, or both."""
+    """Loss weights of ``options.objective``: reversal only, paired + mean only, both, or the teacher pull."""
     weights = {"domain": 1.0, "anchor": options.anchor_weight, "task": options.task_weight,
                "paired": options.paired_weight, "mean": options.mean_weight}
     if options.objective == "dann":  # Ganin et al., JMLR 2016: the adversary alone
         weights.update(paired=0.0, mean=0.0)
     elif options.objective == "paired":
         weights.update(domain=0.0)
+    elif options.objective == "teacher":
+        weights.update(domain=0.0, mean=0.0)
     return weights
+
+
+def learning_rate(options, p: float) -> float:
+    """The learning rate at training progress ``p``: DANN's annealing, constant without an adversary.
+
+    The annealing ``lr / (1 + 10 p) ** 0.75`` belongs to the adversarial schedule; it ends
+    at 0.17 of the start, which starved the teacher pull of a few hundred steps (digits:
+    14% of the gap closed annealed, 48% constant, docs/alignment.md).
+    """
+    if options.objective == "teacher":
+        return options.learning_rate
+    return dann_learning_rate(p, options.learning_rate)
 
 
 def _snapshot(module: nn.Module) -> dict:
@@ -206,7 +235,7 @@ class _Training:
     def step(self, step: int) -> tuple[float, float]:
         """One Adam step at ``step``; returns the schedules' (lambda, learning rate)."""
         p = step / self.options.steps
-        lambda_, lr = dann_lambda(p), dann_learning_rate(p, self.options.learning_rate)
+        lambda_, lr = dann_lambda(p), learning_rate(self.options, p)
         for group in self.optimizer.param_groups:
             group["lr"] = lr
         batch = self.run.next_batch(self.options.batch_size)

@@ -243,10 +243,12 @@ _ALIGNMENT_HELP = {
     "mean_weight": "Weight of the mean-matching loss (whitened distance between the clean and cluttered "
                    "mean features).",
     "task_weight": "Weight of the task heads on clean labels.",
-    "learning_rate": "Initial learning rate (Adam, annealed by the DANN schedule).",
+    "learning_rate": "Initial learning rate (Adam; annealed by the DANN schedule, constant for teacher).",
     "guard_margin": "Stop when a clean probe falls more than this relative margin below its start (0-1).",
     "objective": "Alignment objective: combined (gradient reversal plus paired and mean-matching terms), "
-                 "dann (gradient reversal only) or paired (paired and mean-matching terms only).",
+                 "dann (gradient reversal only), paired (paired and mean-matching terms only) or "
+                 "teacher (cluttered views pulled onto the original encoder's clean features, task "
+                 "heads on both views; pair with --train-from on small encoders).",
 }
 
 
