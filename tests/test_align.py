@@ -332,6 +332,31 @@ def test_guard_ignores_a_regression_probe_within_noise_of_zero():
     assert "angle" in _guard_failure({"angle": 0.3}, {"angle": 0.24}, 0.05, kinds, 2000)
 
 
+def test_regression_head_takes_the_one_standard_error_ridge():
+    # Reference: leave-one-out squared errors from scikit-learn (Ridge, LeaveOneOut,
+    # cross_val_predict) for every penalty of the probe's grid; the head's penalty is the
+    # largest whose mean error is within one standard error of the minimum (Hastie,
+    # Tibshirani & Friedman, ESL 2nd ed. 2009, section 7.10).
+    from sklearn.linear_model import Ridge
+    from sklearn.model_selection import LeaveOneOut, cross_val_predict
+
+    from invariance.align.heads import _smooth_ridge
+    from invariance.metrics.probe import RIDGE_ALPHAS
+
+    rng = np.random.default_rng(7)
+    z = rng.normal(size=(40, 6)) * np.array([1.0, 1.0, 0.5, 0.2, 0.05, 0.01])
+    y = z[:, 0] + 0.5 * z[:, 4] / 0.05 * 0.2 + rng.normal(size=40)
+    errors = np.stack([(cross_val_predict(Ridge(alpha=a), z, y, cv=LeaveOneOut()) - y) ** 2
+                       for a in RIDGE_ALPHAS], axis=1)
+    means = errors.mean(0)
+    best = int(np.argmin(means))
+    limit = means[best] + errors[:, best].std(ddof=1) / np.sqrt(len(y))
+    expected = max(a for a, m in zip(RIDGE_ALPHAS, means) if m <= limit)
+    model = _smooth_ridge(z, y)
+    assert model.alpha == pytest.approx(expected)
+    assert model.alpha >= RIDGE_ALPHAS[best]
+
+
 def test_r2_noise_matches_the_spread_of_simulated_r2():
     # Reference: the large-sample variance of a sample R^2, 4 rho^2 (1 - rho^2)^2 / n
     # (Olkin & Finn, Psychological Bulletin 118 (1995) 155-164, from memory), checked here
@@ -473,46 +498,54 @@ def test_teacher_term_pulls_cluttered_views_onto_the_original_clean_features():
     assert float(run.losses(batch, 0.0, weights)["paired"]) == pytest.approx(expected, rel=1e-4)
 
 
-def test_teacher_task_term_reads_both_views_and_trains_heads_on_clean_only():
+def test_teacher_task_term_reads_both_views_through_held_heads():
     # Reference: scikit-learn's log_loss (cross-entropy) of the head's softmax on each view;
-    # the task term is their sum. The cluttered view's part moves features, not the head:
-    # its gradient with respect to the head's weights is zero (common practice for a held
-    # teacher head).
+    # the task term is their sum. The heads are the original features' probes, held: the
+    # loss moves the features (they get a gradient), never the heads (no gradient, and not
+    # among the trained parameters) (common practice for a fixed teacher head).
     from scipy.special import softmax
     from sklearn.metrics import log_loss
+
+    from invariance.align.heads import _linear_head
 
     rng = np.random.default_rng(6)
     clean = rng.normal(size=(20, 4))
     cluttered = clean + rng.normal(size=(20, 4))
     labels = np.arange(20) % 3
-    head = nn.Linear(4, 3)
+    w, b = rng.normal(size=(3, 4)), rng.normal(size=3)
+    head = _linear_head(w, b)
     c = torch.tensor(clean, dtype=torch.float32)
-    u = torch.tensor(cluttered, dtype=torch.float32, requires_grad=True)
+    u = torch.tensor(cluttered, dtype=torch.float32)
     run = _teacher_run(c, u, labels, head)
     batch = np.arange(8)
     weights = {"domain": 0.0, "anchor": 1.0, "task": 1.0, "paired": 0.0, "mean": 0.0}
-    w, b = head.weight.detach().numpy(), head.bias.detach().numpy()
     expected = sum(log_loss(labels[batch], softmax(x[batch] @ w.T + b, axis=1), labels=[0, 1, 2])
                    for x in (clean, cluttered))
     parts = run.losses(batch, 0.0, weights)
     assert float(parts["task"].detach()) == pytest.approx(expected, rel=1e-4)
-    # Held heads: with the clean view's term removed, the head gets no gradient.
-    run.tasks[0]["mask"] = torch.zeros(20, dtype=torch.bool)
-    run.tasks[0]["mask"][batch] = True
+    assert not any(p is head.weight or p is head.bias for p in run.parameters())
+    features = u.clone().requires_grad_(True)
     from invariance.align.heads import _task_loss
 
-    held = _task_loss(run.tasks, u[batch], torch.as_tensor(batch), hold_heads=True)
-    held.backward()
-    assert head.weight.grad is None and u.grad is not None and float(u.grad.abs().sum()) > 0
+    _task_loss(run.tasks, features[batch], torch.as_tensor(batch)).backward()
+    assert head.weight.grad is None and float(features.grad.abs().sum()) > 0
 
 
-def test_teacher_objective_keeps_a_constant_learning_rate():
+def test_learning_rate_warms_up_then_follows_the_objective():
     # DANN's annealing lr / (1 + 10 p) ** 0.75 (Ganin et al., JMLR 2016, sec. 5.2.2) ends at
     # 11 ** -0.75 = 0.166 of the start; the teacher objective has no adversary and keeps lr.
+    # Both rise linearly over the first tenth of the steps (Goyal et al. 2017, sec. 2.2):
+    # step 0 of 800 trains at 1/80 of the rate, step 39 at 40/80 (times the annealing).
     from invariance.align.loop import learning_rate
+    from invariance.align.reversal import dann_learning_rate
 
-    assert learning_rate(AlignmentOptions(objective="teacher"), 1.0) == pytest.approx(1e-3)
-    assert learning_rate(AlignmentOptions(), 1.0) == pytest.approx(1e-3 * 11 ** -0.75)
+    teacher, combined = AlignmentOptions(objective="teacher"), AlignmentOptions()
+    assert learning_rate(teacher, 1.0) == pytest.approx(1e-3)
+    assert learning_rate(combined, 1.0) == pytest.approx(1e-3 * 11 ** -0.75)
+    assert learning_rate(teacher, 0.0) == pytest.approx(1e-3 / 80)
+    p = 39 / 800
+    assert learning_rate(combined, p) == pytest.approx(0.5 * dann_learning_rate(p, 1e-3))
+    assert learning_rate(teacher, 80 / 800) == pytest.approx(1e-3)
 
 
 # ---------------------------------------------------------------- end to end (small)

@@ -1,7 +1,7 @@
 """Adversarial alignment of an encoder's last stage(s): clutter-invariant features on a CPU.
 
 Domain-adversarial training (DANN) with a gradient reversal layer, plus an anchor on the
-original clean features, warm-started heads for the tasks the encoder carries, a paired
+original clean features, held probe heads for the tasks the encoder carries, a paired
 (relative drift) term and a mean-matching term; the frozen stages are cached so a step
 costs only the trained tail. Held-out pairs are never trained on nor used to stop
 training; before and after are measured on them, and the trained state is kept (its

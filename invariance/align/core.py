@@ -56,7 +56,7 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
                + mean_weight * lambda_p * mean
 
     ``anchor`` keeps clean features near the original encoder's, ``task`` keeps one
-    warm-started linear head per label column the encoder carries (clean probe
+    held linear head (the original features' probe) per label column the encoder carries (clean probe
     significantly above chance on the validation slice), ``paired`` is the batch's
     relative cosine drift, and ``mean`` pulls the mean cluttered feature onto the mean
     clean one in whitened coordinates, over its starting value (see
