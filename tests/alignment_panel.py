@@ -161,18 +161,27 @@ def gap_closed(before: dict, after: dict, tasks) -> dict:
 def summary(result: dict) -> dict:
     """The figures the acceptance targets read, for the state that was kept.
 
+    Tasks carried on the validation slice but not decodable on the held-out clean
+    features before alignment are listed in ``left_out`` and not averaged.
+
     When the alignment did not improve the encoder the original is kept, so the kept
     figures are the original's: nothing closed, nothing fell.
     """
     before = result["before"]
     after = result["after"] if result["improved"] else before
-    tasks = result["settings"]["tasks"]
+    # A task counts when the alignment carried it (validation slice) and its clean probe is
+    # decodable on the held-out pairs before alignment (the project's probe rule: a clean
+    # score not clearly above the baseline makes its gap say nothing). A regression label
+    # with a held-out clean R^2 near 0 otherwise puts its cluttered R^2 of -16 into a "gap".
+    carried = result["settings"]["tasks"]
+    tasks = [t for t in carried if before["probe"].get(t, {}).get("decodable", True)]
     closed = gap_closed(before, after, tasks)
     clean_change = {t: after["probe"][t]["clean"] / before["probe"][t]["clean"] - 1.0
                     for t in tasks if before["probe"].get(t, {}).get("clean", 0) > 0}
     drift0, drift1 = before["paired_drift"]["relative_drift"], after["paired_drift"]["relative_drift"]
     return {
         "improved": result["improved"], "tasks": list(tasks),
+        "left_out": [t for t in carried if t not in tasks],
         "gap_closed": float(np.mean(list(closed.values()))) if closed else float("nan"), "per_task": closed,
         "worst_clean_change": min(clean_change.values()) if clean_change else 0.0,
         "domain_accuracy": (before["domain_classifier"]["accuracy"], after["domain_classifier"]["accuracy"]),

@@ -28,7 +28,10 @@ torch.set_num_threads(min(2, torch.get_num_threads()))  # a shared 2-core machin
 
 pytestmark = pytest.mark.slow
 REDUCED = ("sequential", "vit", "digits")
-SCENE_PAIRS, DIGIT_PAIRS = 200, 300
+# Held-out sets large enough that one probe error moves a score by under 2 points: 30% of
+# 600 scenes is 180 pairs, of which the probe scores 54; of 797 digits (all that did not
+# train the encoder), 240 and 72.
+SCENE_PAIRS, DIGIT_PAIRS = 600, 797
 
 
 @pytest.fixture(scope="session")
@@ -52,11 +55,13 @@ def runs(panel, tmp_path_factory):
 
 
 # Targets not met yet (issue 11 stays open); strict, so a run that meets them fails here
-# until the mark is removed. Measured 2026-12-05, defaults, 800 steps, split seed 0.
+# until the mark is removed. Measured 2026-12-05, defaults, 800 steps, split seed 0, 600
+# scene pairs and 797 digit pairs. The Sequential CNN's part target is above what
+# supervised training on these pairs reaches (18-31% of the gap, docs/alignment.md).
 _NOT_YET = {
-    "sequential": "the guard stopped the run at step 60 (its angle task only just counts as carried): not improved",
-    "vit": "held-out cluttered-probe gap widened (-133% closed), clean part probe -10%, drift fell 17%",
-    "digits": "4.8% of the digit gap closed (target 60%), drift fell 50%",
+    "sequential": "not improved (the original is kept): 0% of the part gap closed",
+    "vit": "0% of the held-out part gap closed (cluttered 0.278 -> 0.278), drift fell 17%",
+    "digits": "3.9% of the digit gap closed (target 60%), drift fell 44%",
 }
 
 
@@ -86,6 +91,38 @@ def test_no_loss_term_grows_by_orders_of_magnitude_early(runs, name):
     for term in ("anchor", "task", "paired", "mean"):
         values = np.array([curves[f"loss_{term}"][i] for i in early])
         assert values.max() <= 100 * max(values[0], 1.0), (term, values)
+
+
+@pytest.fixture(scope="session")
+def teacher_digits(panel, tmp_path_factory):
+    """The ``teacher`` objective on blended digits, trained from the first stage (split seed 0)."""
+    encoder, pairs = panel["digits"]
+    lines = []
+    result = align_encoder(pairs, encoder, out=tmp_path_factory.mktemp("teacher") / "digits.pt",
+                           options=AlignmentOptions(objective="teacher", train_from="0"),
+                           scoring=ScoringOptions(permutations=100), progress=lines.append)
+    return {"result": result, "lines": lines, "summary": panel_module.summary(result)}
+
+
+def test_teacher_objective_closes_the_digit_gap(teacher_digits):
+    # Measured 2026-12-05, split seed 0: 0.236 -> 0.625 on 72 scored held-out digits, 55% of
+    # the gap (combined, the default: 4%); seeds 1 and 2 closed 29% and 29%
+    # (docs/alignment.md). The bound leaves room for a few probe errors either way.
+    result, figures = teacher_digits["result"], teacher_digits["summary"]
+    print(f"\nteacher digits: {figures}")
+    assert result["improved"], result["outcome"]
+    assert figures["gap_closed"] >= 0.40, figures["per_task"]
+    assert figures["worst_clean_change"] >= -0.05
+    assert figures["drift_fall"] >= 0.30
+    curves = result["curves"]
+    for term in ("anchor", "task", "paired"):  # scale-free: nothing grows 100-fold early
+        values = [v for step, v in zip(curves["step"], curves[f"loss_{term}"]) if step <= 100]
+        assert max(values) <= 100 * max(values[0], 1.0), (term, values)
+
+
+@pytest.mark.xfail(strict=True, reason="teacher, split seed 0: 55% of the digit gap closed, short of 60%")
+def test_teacher_objective_reaches_the_digit_target(teacher_digits):
+    assert teacher_digits["summary"]["gap_closed"] >= 0.60
 
 
 @pytest.mark.parametrize("name", REDUCED)
