@@ -1,9 +1,10 @@
-"""What a plain supervised pair objective reaches on blended digits: a reference for the alignment.
+"""What a plain supervised pair objective reaches on a panel encoder: a reference for the alignment.
 
-    python tests/benchmarks/bench_align_reference.py [--pairs 300] [--train-from 0] [--steps 800]
-        [--task-weight 1.0] [--seed 0]
+    python tests/benchmarks/bench_align_reference.py [--encoder digits|sequential] [--pairs 300]
+        [--train-from 0] [--steps 800] [--task-weight 1.0] [--seed 0]
 
-The panel's digits encoder (tests/alignment_panel.py: the plain Sequential CNN trained on
+With ``--encoder sequential`` the same is done for the panel's plain Sequential CNN on
+level-3 workbench scenes at 64 px, with the part class as the label. The panel's digits encoder (tests/alignment_panel.py: the plain Sequential CNN trained on
 clean digits only) is retrained on alignment pairs with the most direct objective the
 pairs allow, outside ``invariance.align``: both views of each pair are pulled onto the
 *original* encoder's clean feature of that pair (mean squared distance in features
@@ -19,7 +20,7 @@ MNIST -> MNIST-M; issue target 60%).
 It is not a product path: it has no guard and sees no held-out pair, but it shows how much
 of the gap the pairs themselves can close at a given data size and trainable part, which
 is the ceiling a default of ``invariance align`` should approach. Figures measured on the
-shared 2-core machine are in docs/alignment.md ("A reference the defaults do not reach yet").
+shared 2-core machine are in docs/alignment.md ("A reference, and what the pairs allow").
 """
 
 from __future__ import annotations
@@ -50,12 +51,34 @@ def _held_out_probe(features_clean, features_cluttered, labels) -> tuple[float, 
             float(probe.score(features_cluttered[half:], labels[half:])))
 
 
+def _data(encoder: str, pairs: int):
+    """The original encoder, both views preprocessed, integer labels and the alignment pairs' indices."""
+    if encoder == "digits":
+        clean, blended, target = panel_module._digit_images()
+        original = panel_module.trained_encoder("digits", (clean, blended, target)).module.eval()
+        candidates = np.arange(panel_module.DIGITS_TRAIN, panel_module.DIGITS_TRAIN + pairs)
+        return original, panel_module._normalised(clean), panel_module._normalised(blended), target, candidates
+    import tempfile
+
+    from invariance.align.trunk import preprocessed
+
+    scenes = panel_module.scene_pairs(Path(tempfile.mkdtemp(prefix="reference_scenes_")), pairs, 7)
+    model = panel_module.trained_encoder("sequential")
+    names = np.asarray(scenes.labels.tasks["part"])
+    target = np.unique(names, return_inverse=True)[1]
+    x_clean, x_clut = preprocessed(list(scenes.clean), model), preprocessed(list(scenes.cluttered), model)
+    return model.module.eval(), x_clean, x_clut, target, np.arange(pairs)
+
+
 def main(argv=None) -> int:
     import torch
     from torch import nn
     from torch.nn import functional as F
 
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--encoder", choices=("digits", "sequential"), default="digits",
+                        help="the panel's digits encoder on blended digits, or its Sequential CNN on "
+                             "level-3 workbench scenes at 64 px (task: the part class)")
     parser.add_argument("--pairs", type=int, default=300, help="alignment pairs (at most 797 digits)")
     parser.add_argument("--train-from", type=int, default=0, help="first trained child of the Sequential CNN")
     parser.add_argument("--steps", type=int, default=800)
@@ -65,13 +88,11 @@ def main(argv=None) -> int:
     torch.set_num_threads(min(2, torch.get_num_threads()))
     torch.manual_seed(args.seed)
 
-    clean, blended, target = panel_module._digit_images()
-    original = panel_module.trained_encoder("digits", (clean, blended, target)).module.eval()
+    original, x_clean, x_clut, target, candidates = _data(args.encoder, args.pairs)
     rng = np.random.default_rng(args.seed)
-    order = rng.permutation(np.arange(panel_module.DIGITS_TRAIN, panel_module.DIGITS_TRAIN + args.pairs))
-    n_train = int(round((1 - HELD_OUT_FRACTION) * args.pairs))
+    order = rng.permutation(candidates)
+    n_train = int(round((1 - HELD_OUT_FRACTION) * len(candidates)))
     train, held = order[:n_train], order[n_train:]
-    x_clean, x_clut = panel_module._normalised(clean), panel_module._normalised(blended)
     labels = torch.as_tensor(target)
 
     def features(module, x):
@@ -79,7 +100,7 @@ def main(argv=None) -> int:
             return module(x).numpy()
 
     before = _held_out_probe(features(original, x_clean[held]), features(original, x_clut[held]), target[held])
-    print(f"{args.pairs} pairs ({n_train} trained on), children from {args.train_from} trained, "
+    print(f"{args.encoder}: {args.pairs} pairs ({n_train} trained on), children from {args.train_from} trained, "
           f"task weight {args.task_weight}, seed {args.seed}")
     print(f"before: held-out clean probe {before[0]:.3f}, cluttered {before[1]:.3f}")
     model = copy.deepcopy(original)
