@@ -49,12 +49,9 @@ def test_demo_ranks_by_task_information_and_says_what_alignment_did(demo):
     assert "random weights (reference)" in html and not re.search(r"https?://", html)
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "issue 11, measured 2026-12-05: with the scale-free defaults the demo's alignment of the clean-only "
-    "CNN on the 200 sample pairs is judged not improved on its held-out pairs (held-out clean y probe "
-    "0.962 -> 0.776), so the comparison has no aligned encoder; the workbench acceptance test "
-    "(300 level-3 pairs) does improve"))
 def test_demo_alignment_improves_the_clean_only_encoder(demo):
+    # Judged improved on its held-out pairs since the learning-rate warm-up and held task
+    # heads (docs/alignment.md); before them the held-out clean y probe fell 0.962 -> 0.776.
     assert demo["alignment"]["improved"] is True, demo["alignment"]["outcome"]
     results = _by_name(demo["comparison"])
     assert results["workbench CNN, clean-only, aligned"]["alignment"]["held_out_pairs"] > 0
