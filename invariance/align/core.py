@@ -66,7 +66,7 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
     onto the original encoder's clean feature of its pair (per feature, in units of its
     clean spread), lets the held task heads read the cluttered view too, and keeps the
     learning rate constant (on blended digits, trained from the first stage, it closed
-    55% of the held-out digit gap where ``combined`` closed 6%; docs/alignment.md). Only the
+    55% of the held-out digit gap where ``combined`` closed 4%; docs/alignment.md). Only the
     stages from ``options.train_from`` on are trained (default: the shortest run of last
     stages holding half the parameters, split with torch.fx when the forward is not a
     chain); earlier stages run once and are cached. Every ``EVAL_EVERY`` steps (20) the
