@@ -139,7 +139,8 @@ class AlignmentOptions:
     anchor_weight, paired_weight, mean_weight, task_weight : float
         Loss weights (10, 3, 10, 1).
     learning_rate : float, default=1e-3
-        Initial Adam learning rate of the annealing schedule.
+        Adam's learning rate, reached after a linear warm-up over the first tenth of the
+        steps, then annealed by the DANN schedule (constant for ``teacher``).
     guard_margin : float, default=0.05
         Relative fall of a validation clean probe that stops training.
     batch_size : int, default=32

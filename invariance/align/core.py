@@ -48,9 +48,10 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
 
     Domain-adversarial training (DANN): a discriminator (D -> 64 -> 1, logistic loss)
     sees clean and cluttered features through a gradient reversal layer whose weight
-    follows ``lambda_p = 2 / (1 + exp(-10 p)) - 1``; the learning rate follows
-    ``lr / (1 + 10 p) ** 0.75``, with Adam in place of the paper's SGD, which converges in
-    the few hundred steps a CPU run affords (common practice). The loss is
+    follows ``lambda_p = 2 / (1 + exp(-10 p)) - 1``; the learning rate rises linearly over
+    the first tenth of the steps, then follows ``lr / (1 + 10 p) ** 0.75``, with Adam in
+    place of the paper's SGD, which converges in the few hundred steps a CPU run affords
+    (common practice). The loss is
 
         domain + anchor_weight * anchor + task_weight * task + paired_weight * paired
                + mean_weight * lambda_p * mean

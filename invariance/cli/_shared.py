@@ -243,7 +243,8 @@ _ALIGNMENT_HELP = {
     "mean_weight": "Weight of the mean-matching loss (whitened distance between the clean and cluttered "
                    "mean features).",
     "task_weight": "Weight of the task heads on clean labels.",
-    "learning_rate": "Initial learning rate (Adam; annealed by the DANN schedule, constant for teacher).",
+    "learning_rate": "Learning rate (Adam): reached after a linear warm-up over the first tenth of the steps, "
+                     "then annealed by the DANN schedule (constant for teacher).",
     "guard_margin": "Stop when a clean probe falls more than this relative margin below its start (0-1).",
     "objective": "Alignment objective: combined (gradient reversal plus paired and mean-matching terms), "
                  "dann (gradient reversal only), paired (paired and mean-matching terms only) or "
