@@ -332,6 +332,29 @@ def test_guard_ignores_a_regression_probe_within_noise_of_zero():
     assert "angle" in _guard_failure({"angle": 0.3}, {"angle": 0.24}, 0.05, kinds, 2000)
 
 
+def test_r2_noise_rarely_calls_a_fall_under_a_null_of_no_change():
+    # Null: two independent samples of the same bivariate normal (rho^2 = 0.3, 50 images
+    # each); a "fall" is the first R^2 exceeding the second by more than _r2_noise of the
+    # first. 1.96 standard errors, one-sided: about 2.5% expected (Olkin & Finn 1995 for the
+    # variance); measured 1.5-5% over rho^2 in {0.2, 0.5} and n in {50, 126}. With
+    # heavy-tailed errors (Student t, 3 df) it is 4.6-13.9%: the normal-theory variance is
+    # too small there (docs/alignment.md).
+    from invariance.align.monitor import _r2_noise
+
+    rng = np.random.default_rng(8)
+    n, reps, rho2 = 50, 4000, 0.3
+
+    def sample():
+        x = rng.standard_normal((reps, n))
+        y = np.sqrt(rho2) * x + np.sqrt(1 - rho2) * rng.standard_normal((reps, n))
+        xc, yc = x - x.mean(1, keepdims=True), y - y.mean(1, keepdims=True)
+        return (xc * yc).sum(1) ** 2 / ((xc**2).sum(1) * (yc**2).sum(1))
+
+    first, second = sample(), sample()
+    rate = np.mean(first - second > np.array([_r2_noise(v, n) for v in first]))
+    assert rate <= 0.05
+
+
 def test_regression_head_takes_the_one_standard_error_ridge():
     # Reference: leave-one-out squared errors from scikit-learn (Ridge, LeaveOneOut,
     # cross_val_predict) for every penalty of the probe's grid; the head's penalty is the
@@ -474,10 +497,8 @@ def _teacher_run(clean, cluttered, labels, head):
     n = len(clean)
     task = {"name": "part", "kind": "classification", "target": torch.as_tensor(labels),
             "mask": torch.ones(n, dtype=torch.bool), "head": head}
-    run = _Run(nn.Identity(), clean, cluttered, np.arange(n - 4), np.arange(n - 4, n), [task],
-               (torch.zeros(clean.shape[1]), 1.0), 0)
-    run.objective = "teacher"
-    return run
+    return _Run(nn.Identity(), clean, cluttered, np.arange(n - 4), np.arange(n - 4, n), [task],
+                (torch.zeros(clean.shape[1]), 1.0), 0, objective="teacher")
 
 
 def test_teacher_term_pulls_cluttered_views_onto_the_original_clean_features():

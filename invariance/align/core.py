@@ -153,9 +153,8 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
     align_idx, held_idx = split_pairs(len(pairs), held_out_fraction=options.held_out_fraction, seed=seed,
                                       folds=scoring.folds, groups=groups)
     train_idx, val_idx = validation_slice(align_idx, seed=seed, groups=groups)
-    aligned, run, node, verdicts = _prepare(pairs, encoder, options.train_from, (align_idx, train_idx, val_idx),
+    aligned, run, node, verdicts = _prepare(pairs, encoder, options, (align_idx, train_idx, val_idx),
                                             extraction.batch_size, seed)
-    run.objective = options.objective
     _announce(reporter, node, run, verdicts, options)
     held_out = pairs.subset(held_idx)
     scoring_start = time.perf_counter()
@@ -232,12 +231,12 @@ def _measure_and_keep(out, encoder, aligned, pairs, settings, info, held_idx, ju
     return after, improved, reason
 
 
-def _prepare(pairs, encoder, train_from, indices, batch_size, seed):
+def _prepare(pairs, encoder, options, indices, batch_size, seed):
     """The trained copy, its training run (cached activations, carried tasks' heads), its node and the task check."""
     align_idx, train_idx, val_idx = indices
     aligned = copy.deepcopy(encoder.module).eval()
     example = preprocessed([pairs.clean[i] for i in align_idx[:SPLIT_CHECK_IMAGES]], encoder)
-    trunk, tail, node = split_module(aligned, train_from, example)
+    trunk, tail, node = split_module(aligned, options.train_from, example)
     aligned.requires_grad_(False)
     tail.requires_grad_(True)
     act_clean = trunk_activations([pairs.clean[i] for i in align_idx], encoder, trunk, batch_size)
@@ -251,7 +250,8 @@ def _prepare(pairs, encoder, train_from, indices, batch_size, seed):
     verdicts = carried(built, f0, train_pos, val_pos)
     built = [t for t in built if verdicts.get(t["name"], {}).get("carried")]
     head_input = (torch.as_tensor(mean, dtype=torch.float32, device=act_clean.device), spread)
-    run = _Run(tail, act_clean, act_clut, train_pos, val_pos, built, head_input, seed)
+    run = _Run(tail, act_clean, act_clut, train_pos, val_pos, built, head_input, seed,
+               objective=options.objective)
     run.total_parameters = sum(p.numel() for p in aligned.parameters())
     return aligned, run, node, verdicts
 

@@ -26,7 +26,7 @@ def _standardiser(f0_train: np.ndarray) -> tuple[np.ndarray, float]:
 
     One spread for all features (not one per feature, as StandardScaler would) keeps a
     nearly constant feature from being amplified into a huge head weight when alignment
-    later moves it (common practice for warm-started linear heads).
+    later moves it (common practice for linear heads fitted once and held).
     """
     mean = f0_train.mean(axis=0)
     spread = float(np.sqrt(((f0_train - mean) ** 2).mean())) or 1.0

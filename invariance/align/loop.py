@@ -61,13 +61,15 @@ class _Run:
     seed : int
         Seeds the discriminator's initial weights, the batch order and the slice checks
         through local generators; the caller's global random state is not touched.
+    objective : str, default="combined"
+        ``"teacher"`` replaces the paired term by the teacher pull and lets the heads read
+        the cluttered view too (see :meth:`losses`); other objectives only set weights.
     """
 
-    # Set by the caller for the ``teacher`` objective (see losses).
-    objective = "combined"
-
-    def __init__(self, tail, act_clean, act_cluttered, train_pos, val_pos, tasks, head_input, seed):
+    def __init__(self, tail, act_clean, act_cluttered, train_pos, val_pos, tasks, head_input, seed,
+                 objective="combined"):
         self.tail, self.act_clean, self.act_cluttered = tail, act_clean, act_cluttered
+        self.objective = objective
         self.train_pos, self.val_pos, self.tasks = train_pos, val_pos, tasks
         self.head_input, self.seed = head_input, seed
         self.f0_clean = tail_features(tail, act_clean)
@@ -98,6 +100,10 @@ class _Run:
         params = [p for p in self.tail.parameters() if p.requires_grad]
         return params + list(self.discriminator.parameters())
 
+    def _head_features(self, features: torch.Tensor) -> torch.Tensor:
+        """Features in the units the heads were fitted in (heads._standardiser)."""
+        return (features - self.head_input[0]) / self.head_input[1]
+
     def next_batch(self, batch_size: int) -> np.ndarray:
         """Positions (into the alignment arrays) of the next batch: epochs of seeded shuffles."""
         if len(self._queue) < batch_size:
@@ -115,15 +121,14 @@ class _Run:
             self.discriminator, (f_clean - mu) / sd, (f_clut - mu) / sd, lambda_)
         parts["anchor"] = anchor_loss(f_clean, self.f0_clean[batch], self.scale)
         positions = torch.as_tensor(batch)
-        parts["task"] = _task_loss(self.tasks, (f_clean - self.head_input[0]) / self.head_input[1], positions)
+        parts["task"] = _task_loss(self.tasks, self._head_features(f_clean), positions)
         if self.objective == "teacher":
             # The teacher pull: each cluttered view onto the original encoder's clean feature
             # of its pair, per feature in units of its clean spread (losses.paired_loss), and
             # the held heads reading the cluttered view too (a pair's views share its
             # labels). Scale-free: standardised features, standardised targets.
             parts["paired"] = paired_loss(self.f0_clean[batch], f_clut, self.variance)
-            cluttered = _task_loss(self.tasks, (f_clut - self.head_input[0]) / self.head_input[1], positions)
-            parts["task"] = parts["task"] + cluttered
+            parts["task"] = parts["task"] + _task_loss(self.tasks, self._head_features(f_clut), positions)
         else:
             parts["paired"] = paired_drift_loss(f_clean, f_clut)
         parts["mean"] = mean_matching_loss(f_clean, f_clut, self.whitening) / self.norms["mean"]
