@@ -48,6 +48,18 @@ def test_clean_accuracy_equals_a_plain_sklearn_probe(digits):
     assert result["kind"] == "classification" and result["metric"] == "accuracy"
 
 
+def test_clean_standard_error_is_the_binomial_one_for_an_accuracy(digits):
+    # Reference: the standard error of a proportion, sqrt(p (1 - p) / n) (binomial
+    # variance, common practice); the bootstrap's is within Monte Carlo noise of it.
+    X, labels = digits
+    noisy = X + np.random.default_rng(0).normal(0, 4.0, X.shape)
+    blurred = X + np.random.default_rng(1).normal(0, 12.0, X.shape)
+    result = linear_probes(blurred, noisy, {"digit": labels}, seed=2)["digit"]
+    acc, n = result["clean"], result["n_test"]
+    assert 0.3 < acc < 0.95
+    assert result["clean_se"] == pytest.approx(np.sqrt(acc * (1 - acc) / n), rel=0.1)
+
+
 def test_identical_features_have_no_gap(digits):
     X, labels = digits
     result = linear_probes(X, X.copy(), {"digit": labels})["digit"]

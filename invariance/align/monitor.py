@@ -157,12 +157,13 @@ def _r2_noise(start: float, n: int) -> float:
     return _Z_95 * math.sqrt(2.0 * 4.0 * r2 * (1.0 - r2) ** 2 / max(n, 1))
 
 
-def _allowed_fall(start: float, kind: str, margin: float, n_val: int) -> float:
+def _allowed_fall(start: float, kind: str, margin: float, n_val: int, r2_noise: float | None = None) -> float:
     """How far a clean probe may fall below ``start`` before it counts as fallen.
 
     ``margin`` (relative), or the sampling noise of the score on ``n_val`` images,
     whichever is larger: a fall the images cannot tell from noise does not stop a run
-    nor fail the held-out judgement.
+    nor fail the held-out judgement. ``r2_noise``, when given, replaces the
+    normal-theory noise of an R^2 (a bootstrap's, which holds for heavy-tailed errors).
     """
     fall = margin * abs(start)
     if kind == "classification":
@@ -175,7 +176,8 @@ def _allowed_fall(start: float, kind: str, margin: float, n_val: int) -> float:
     # that explains little of its label on a few dozen images is noisy far beyond either:
     # its sampling noise applies as for an accuracy (a task carried only just above the
     # floor stopped every run on the panel's Sequential CNN, docs/alignment.md).
-    return max(fall, margin * (1.0 - start), _r2_noise(start, n_val))
+    noise = _r2_noise(start, n_val) if r2_noise is None else r2_noise
+    return max(fall, margin * (1.0 - start), noise)
 
 
 def _guard_failure(start: dict, now: dict, margin: float, kinds: dict, n_val: int) -> str | None:

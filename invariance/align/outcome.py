@@ -17,6 +17,23 @@ def _value(metrics: dict, group: str, key: str) -> float:
     return math.nan if value is None else float(value)
 
 
+def _bootstrap_noise(p0: dict, p1: dict) -> float | None:
+    """1.96 standard errors of the difference of two clean scores, from their bootstraps.
+
+    Each probe result carries its clean score's bootstrap standard error (``clean_se``,
+    :func:`invariance.metrics.probe.linear_probes`); the difference of two scores is
+    given the variance of two independent ones, ``se0^2 + se1^2``. It replaces the
+    normal-theory variance of R^2 (Olkin & Finn 1995), which assumes normal errors and
+    is too small when they are heavy-tailed: under a null of no change with Student t
+    errors of 3 degrees of freedom that variance called 4.6-13.9% of runs a fall where
+    2.5% was meant (tests/test_align.py). None when either score has no standard error.
+    """
+    se0, se1 = p0.get("clean_se"), p1.get("clean_se")
+    if se0 is None or se1 is None or not (math.isfinite(se0) and math.isfinite(se1)):
+        return None
+    return _Z_95 * math.sqrt(se0 * se0 + se1 * se1)
+
+
 def judge(before: dict, after: dict, carried: list[str], margin: float, n_pairs: int) -> tuple[bool, str]:
     """Whether ``after`` beats ``before`` on the held-out pairs, and why (one plain line).
 
@@ -26,7 +43,8 @@ def judge(before: dict, after: dict, carried: list[str], margin: float, n_pairs:
     encoder carries kept its clean probe within the guard's
     allowance (``margin`` relative, or the sampling noise of the probe's score on the
     images it was scored on, its ``n_test``; see
-    :func:`invariance.align.monitor._allowed_fall`).
+    :func:`invariance.align.monitor._allowed_fall`; for R^2 the noise is the two scores'
+    bootstrap noise, :func:`_bootstrap_noise`, which does not assume normal errors).
 
     Parameters
     ----------
@@ -60,7 +78,7 @@ def judge(before: dict, after: dict, carried: list[str], margin: float, n_pairs:
         kind = p0.get("kind", "classification")
         # the probe is scored on its own test split of the held-out pairs, not on all of them
         n_scored = int(p0.get("n_test") or n_pairs)
-        if p0["clean"] - p1["clean"] > _allowed_fall(p0["clean"], kind, margin, n_scored):
+        if p0["clean"] - p1["clean"] > _allowed_fall(p0["clean"], kind, margin, n_scored, _bootstrap_noise(p0, p1)):
             return False, f"held-out clean probe {task!r} fell ({p0['clean']:.3f} -> {p1['clean']:.3f})"
     return True, (f"held-out relative drift {drift0:.3f} -> {drift1:.3f}, domain accuracy {acc0:.3f} -> {acc1:.3f}, "
                   "carried clean probes kept")

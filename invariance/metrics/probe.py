@@ -179,7 +179,7 @@ def _probe_one(clean, cluttered, values, seed, test_fraction, resamples, groups=
     }
     point = {name: _score(kind, y_test, p) for name, p in preds.items()}
     test_groups = None if groups is None else np.unique(groups[test], return_inverse=True)[1]
-    gap_ci, margin_low = _bootstrap(kind, y_test, preds, point, seed, resamples, test_groups)
+    gap_ci, margin_low, clean_se = _bootstrap(kind, y_test, preds, point, seed, resamples, test_groups)
     decodable = bool(margin_low > 0)
     out = {
         "kind": kind,
@@ -188,6 +188,7 @@ def _probe_one(clean, cluttered, values, seed, test_fraction, resamples, groups=
         "cluttered": point["cluttered"],
         "gap": point["clean"] - point["cluttered"],
         "gap_ci": gap_ci,
+        "clean_se": clean_se,
         "ci_method": _CI_METHOD[kind].format(resamples) + ("" if groups is None else "; groups (episodes) resampled"),
         "baseline": point["baseline"],
         "decodable": decodable,
@@ -262,17 +263,18 @@ def _resampled_differences(kind, y, preds, seed, resamples):
     rng = np.random.default_rng(seed)
     m = y.size
     chunk = max(1, _BOOTSTRAP_CELLS // m)
-    gaps, margins = [], []
+    gaps, margins, cleans = [], [], []
     for start in range(0, resamples, chunk):
         idx = rng.integers(0, m, size=(min(chunk, resamples - start), m))
         res = _resampled_scores(kind, y, preds, idx)
         gaps.append(res["clean"] - res["cluttered"])
         margins.append(res["clean"] - res["baseline"])
-    gaps, margins = np.concatenate(gaps), np.concatenate(margins)
+        cleans.append(res["clean"])
+    gaps, margins, cleans = np.concatenate(gaps), np.concatenate(margins), np.concatenate(cleans)
     # the held-out labels vary (checked before, so m >= 2): a resample with no SS_tot
     # has probability at most 1/2 per draw (2 pairs, two values); some are always left
     ok = np.isfinite(gaps)
-    return gaps[ok], margins[ok]
+    return gaps[ok], margins[ok], cleans[ok]
 
 
 def _interval(values, point, m, symmetric):
@@ -308,31 +310,35 @@ def _weighted_scores(kind, y, preds, W):
 
 
 def _group_differences(kind, y, preds, groups, seed, resamples):
-    """Gap and margin per cluster-bootstrap resample: whole groups drawn with replacement
-    (Davison & Hinkley, Bootstrap Methods and their Application, 1997, section 3.8)."""
+    """Gap, margin and clean score per cluster-bootstrap resample: whole groups drawn with
+    replacement (Davison & Hinkley, Bootstrap Methods and their Application, 1997, section 3.8)."""
     G = int(groups.max()) + 1
     counts = np.random.default_rng(seed).multinomial(G, np.full(G, 1.0 / G), size=resamples)
     res = _weighted_scores(kind, y, preds, counts[:, groups].astype(np.float64))
     gaps, margins = res["clean"] - res["cluttered"], res["clean"] - res["baseline"]
     ok = np.isfinite(gaps)
-    return gaps[ok], margins[ok]
+    return gaps[ok], margins[ok], res["clean"][ok]
 
 
 def _bootstrap(kind, y, preds, point, seed, resamples, groups=None):
-    """95% interval of the gap and the lower end of the clean score's margin over baseline.
+    """95% interval of the gap, the lower end of the clean score's margin over baseline, and
+    the clean score's bootstrap standard error.
 
-    With groups the resampled unit, and the m of the expanded interval, is the group.
+    With groups the resampled unit, and the m of the expanded interval, is the group. The
+    standard error is the standard deviation of the resampled clean scores (Efron &
+    Tibshirani 1993, ch. 6): it assumes nothing about the errors' distribution, where the
+    normal-theory variance of R^2 is too small with heavy-tailed errors.
     """
     if groups is None:
-        gaps, margins = _resampled_differences(kind, y, preds, seed, resamples)
+        gaps, margins, cleans = _resampled_differences(kind, y, preds, seed, resamples)
         m = y.size
     else:
-        gaps, margins = _group_differences(kind, y, preds, groups, seed, resamples)
+        gaps, margins, cleans = _group_differences(kind, y, preds, groups, seed, resamples)
         m = max(int(groups.max()) + 1, 2)
     symmetric = kind == "regression"
     gap = _interval(gaps, point["clean"] - point["cluttered"], m, symmetric)
     margin = _interval(margins, point["clean"] - point["baseline"], m, symmetric)
-    return list(gap), margin[0]
+    return list(gap), margin[0], float(np.std(cleans, ddof=1))
 
 
 _CI_METHOD = {
@@ -379,7 +385,8 @@ def linear_probes(
         bootstrap over the held-out pairs: each resample rescores the clean and the
         cluttered predictions on the same pairs; the expanded percentile interval for
         accuracy, the same width centred on the gap for R^2; Efron & Tibshirani 1993,
-        Hesterberg 2015),
+        Hesterberg 2015), ``clean_se`` (the clean score's standard error: the standard
+        deviation of the same resamples' clean scores),
         ``ci_method``, ``baseline`` (score of the no-feature predictor fitted on the
         training pairs: the rate of the training majority class among the held-out
         pairs, or the R^2 of predicting the training mean, <= 0), ``decodable`` (the

@@ -174,7 +174,7 @@ def _probe_tasks(clean, cluttered, rng):
 
 def _gap_intervals(kind, y, preds, seed):
     """Percentile, BCa, expanded and symmetric expanded intervals from the same resamples."""
-    gaps, _ = probe_mod._resampled_differences(kind, y, preds, seed, RESAMPLES)
+    gaps = probe_mod._resampled_differences(kind, y, preds, seed, RESAMPLES)[0]
 
     def gap(keep):
         return probe_mod._score(kind, y[keep], preds["clean"][keep]) - probe_mod._score(
