@@ -1003,6 +1003,45 @@ def test_outcome_is_judged_on_held_out_figures():
                  ["part"], 0.05, 180)[0]
 
 
+def test_guard_stops_only_after_the_warm_up():
+    # The guard's checks inside the learning-rate warm-up (the first WARMUP_SHARE of the
+    # steps) never stop training, since the features are in transit there; after it,
+    # GUARD_PATIENCE failed checks in a row do (early stopping with patience, common
+    # practice). A failing state is never kept, warm-up or not.
+    from invariance.align.loop import EVAL_EVERY, GUARD_PATIENCE, WARMUP_SHARE, _Training
+    from invariance.progress import Reporter
+
+    class FallingRun:
+        tail = nn.Linear(2, 2)
+        val_pos = np.arange(60)
+        tasks = [{"name": "part", "kind": "classification"}]
+
+        def __init__(self):
+            self.scores = iter([0.40] * 100)  # from step 0's 0.95
+
+        def parameters(self):
+            return self.tail.parameters()
+
+        def validate(self):
+            return {"probes": {"part": next(self.scores)}, "drift": 0.1, "domain_accuracy": 0.5}
+
+    options = AlignmentOptions(steps=800)
+    training = _Training(FallingRun(), options, Reporter(enabled=False), None)
+    training.probes0 = {"part": 0.95}
+    training.best = {"state": {}, "drift": 1.0, "step": 0}
+    warm_up = int(WARMUP_SHARE * options.steps)
+    steps = range(EVAL_EVERY, options.steps + 1, EVAL_EVERY)
+    stops = []
+    for step in steps:
+        training.sums, training.count = {"discriminator_accuracy": 0.5, **{k: 0.0 for k in LOSS_NAMES}}, 1
+        if training.evaluate(step, 1.0, 1e-3):
+            stops.append(step)
+            break
+    first_counted = next(s for s in steps if s > warm_up)
+    assert stops == [first_counted + (GUARD_PATIENCE - 1) * EVAL_EVERY]
+    assert training.best["step"] == 0  # every state after step 0 failed the guard
+
+
 def test_held_out_r2_noise_comes_from_the_scores_bootstraps():
     from invariance.align.outcome import judge
 

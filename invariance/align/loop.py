@@ -276,8 +276,12 @@ class _Training:
             self.best = {"state": _snapshot(self.run.tail), "drift": val["drift"], "step": step}
         # A state that fails the guard is never kept; training stops only when the guard
         # fails GUARD_PATIENCE checks in a row, so one noisy slice check does not end a run
-        # that recovers (common practice for early stopping with patience).
-        self.failures = self.failures + 1 if failure else 0
+        # that recovers (common practice for early stopping with patience). Checks inside
+        # the warm-up do not count: the features are in transit there (the workbench CNN
+        # trained whole dipped from 0.97 to 0.86 over steps 20-40 and was back at 0.93 by
+        # step 80, where it went on to close 57% of the held-out gap; docs/alignment.md).
+        warming = step <= WARMUP_SHARE * self.options.steps
+        self.failures = self.failures + 1 if failure and not warming else 0
         return failure if self.failures >= GUARD_PATIENCE else None
 
     def _log(self, step, means, lambda_, lr, val) -> None:
