@@ -21,6 +21,9 @@ from torch import fx, nn
 
 from ..errors import InvalidParameter, InvarianceError
 
+# The cut "before the first node": no trunk, the whole forward is the tail.
+_WHOLE = -1
+
 
 def _trace(module: nn.Module) -> fx.GraphModule:
     try:
@@ -103,24 +106,23 @@ def _stage_name(module: nn.Module, nodes: list[fx.Node], cut: int) -> str:
     return name
 
 
-def _choose_cut(module, traced, cuts, train_from, share) -> int:
+def _choose_cut(module, traced, cuts, train_from, example) -> int:
     nodes = list(traced.graph.nodes)
     if train_from is None:
-        total = max(sum(p.numel() for p in module.parameters()), 1)
-        for cut in reversed(cuts):
-            if _parameter_count(_pieces(traced, cut)[1]) >= share * total:
+        from .trunk import TAIL_FLOP_BUDGET, _tail_flops
+
+        for cut in [_WHOLE, *cuts]:
+            trunk, tail = (nn.Identity(), module) if cut == _WHOLE else _pieces(traced, cut)
+            if _parameter_count(tail) and _tail_flops(trunk, tail, example) <= TAIL_FLOP_BUDGET:
                 return cut
-        return cuts[0]
+        return max(c for c in cuts if _parameter_count(_pieces(traced, c)[1]))
     starts = [i for i, n in enumerate(nodes)
               if (_module_path(n) or "") == train_from or (_module_path(n) or "").startswith(train_from + ".")]
     if not starts:
         raise InvalidParameter("train_from", f"train_from={train_from!r} is not valid: no such stage in this "
                                              f"encoder's forward; pass one of: {', '.join(stage_names(module))}")
     before = [c for c in cuts if c < starts[0]]
-    if not before:
-        raise InvarianceError(f"train_from={train_from!r}: nothing before it can be cached; pass a later stage of: "
-                              f"{', '.join(stage_names(module))}")
-    return before[-1]
+    return before[-1] if before else _WHOLE
 
 
 def stage_names(module: nn.Module) -> list[str]:
@@ -130,20 +132,18 @@ def stage_names(module: nn.Module) -> list[str]:
     return [_stage_name(module, nodes, c) for c in _cut_points(nodes)]
 
 
-def split_graph(module: nn.Module, train_from: str | None, example: torch.Tensor,
-                share: float | None = None) -> tuple[nn.Module, nn.Module, str]:
+def split_graph(module: nn.Module, train_from: str | None, example: torch.Tensor) -> tuple[nn.Module, nn.Module, str]:
     """Trunk and tail of ``module`` cut at a node of its ``torch.fx`` graph.
 
     Parameters
     ----------
     module : nn.Module
     train_from : str or None
-        Dotted submodule path where the tail starts; ``None``: the last cut whose tail holds
-        ``share`` of the parameters.
+        Dotted submodule path where the tail starts; ``None``: the earliest cut (or the whole
+        forward) whose tail costs at most :data:`invariance.align.trunk.TAIL_FLOP_BUDGET`
+        per image, else the latest cut with parameters after it.
     example : torch.Tensor
         Preprocessed images; ``tail(trunk(x))`` must reproduce ``module(x)``.
-    share : float, optional
-        Default :data:`invariance.align.trunk.TRAINED_SHARE`.
 
     Returns
     -------
@@ -153,10 +153,11 @@ def split_graph(module: nn.Module, train_from: str | None, example: torch.Tensor
     Raises
     ------
     InvarianceError
-        When the graph cannot be traced, has no cut before ``train_from``, or the pieces do
-        not reproduce the encoder.
+        When the graph cannot be traced or the pieces do not reproduce the encoder. A
+        ``train_from`` with no cut before it returns an identity trunk and the whole
+        ``module`` as the tail: nothing is cached, everything trains.
     """
-    from .trunk import TRAINED_SHARE, _reproduces
+    from .trunk import _reproduces
 
     traced = _trace(module)
     nodes = list(traced.graph.nodes)
@@ -164,7 +165,12 @@ def split_graph(module: nn.Module, train_from: str | None, example: torch.Tensor
     if not cuts:
         raise InvarianceError("this encoder's forward graph has no point where one activation carries "
                               "everything after it; it cannot be split for alignment")
-    cut = _choose_cut(module, traced, cuts, train_from, TRAINED_SHARE if share is None else share)
+    cut = _choose_cut(module, traced, cuts, train_from, example)
+    if cut == _WHOLE:
+        # Nothing before the stage can be cached: the whole forward trains, from the input
+        # images (an identity trunk).
+        first = next((name for name, child in module.named_children() if any(True for _ in child.parameters())), "input")
+        return nn.Identity(), module, train_from or first
     trunk, tail = _pieces(traced, cut)
     node = _stage_name(module, nodes, cut)
     if not any(True for _ in tail.parameters()):
