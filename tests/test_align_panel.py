@@ -93,36 +93,14 @@ def test_no_loss_term_grows_by_orders_of_magnitude_early(runs, name):
         assert values.max() <= 100 * max(values[0], 1.0), (term, values)
 
 
-@pytest.fixture(scope="session")
-def teacher_digits(panel, tmp_path_factory):
-    """The ``teacher`` objective on blended digits, trained from the first stage (split seed 0)."""
-    encoder, pairs = panel["digits"]
-    lines = []
-    result = align_encoder(pairs, encoder, out=tmp_path_factory.mktemp("teacher") / "digits.pt",
-                           options=AlignmentOptions(objective="teacher", train_from="0"),
-                           scoring=ScoringOptions(permutations=100), progress=lines.append)
-    return {"result": result, "lines": lines, "summary": panel_module.summary(result)}
-
-
-def test_teacher_objective_closes_the_digit_gap(teacher_digits):
-    # Measured 2026-12-05, split seed 0: 0.236 -> 0.625 on 72 scored held-out digits, 55% of
-    # the gap (combined, the default: 4%); seeds 1 and 2 closed 29% and 29%
-    # (docs/alignment.md). The bound leaves room for a few probe errors either way.
-    result, figures = teacher_digits["result"], teacher_digits["summary"]
-    print(f"\nteacher digits: {figures}")
+def test_default_alignment_closes_much_of_the_digit_gap(runs):
+    # Measured 2026-12-05, split seed 0 (the default: teacher, whole network): 55% of the
+    # digit gap; seeds 1 and 2 closed 29% and 29% (docs/alignment.md). The bound leaves
+    # room for a few of the 72 scored digits either way.
+    result, figures = runs["digits"]["result"], runs["digits"]["summary"]
     assert result["improved"], result["outcome"]
     assert figures["gap_closed"] >= 0.40, figures["per_task"]
-    assert figures["worst_clean_change"] >= -0.05
     assert figures["drift_fall"] >= 0.30
-    curves = result["curves"]
-    for term in ("anchor", "task", "paired"):  # scale-free: nothing grows 100-fold early
-        values = [v for step, v in zip(curves["step"], curves[f"loss_{term}"]) if step <= 100]
-        assert max(values) <= 100 * max(values[0], 1.0), (term, values)
-
-
-@pytest.mark.xfail(strict=True, reason="teacher, split seed 0: 55% of the digit gap closed, short of 60%")
-def test_teacher_objective_reaches_the_digit_target(teacher_digits):
-    assert teacher_digits["summary"]["gap_closed"] >= 0.60
 
 
 @pytest.mark.parametrize("name", REDUCED)

@@ -74,6 +74,10 @@ def test_align_help_prints_the_real_default_of_every_option():
         after = text.split(flag, 1)[1].split(" --", 1)[0]
         assert f"[default: {value}]" in after, (flag, after)
     assert "the library's" not in text
+    from invariance.align.trunk import TAIL_FLOP_BUDGET
+
+    after = text.split("--train-from", 1)[1].split(" --", 1)[0]
+    assert f"at most {TAIL_FLOP_BUDGET / 1e6:.0f} MFLOP per image" in after, after
 
 
 def test_score_help_says_what_data_may_be_and_lists_exit_codes():

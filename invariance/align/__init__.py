@@ -63,13 +63,13 @@ from .reversal import (
 )
 from .outcome import judge, settle
 from .splits import VALIDATION_FRACTION, split_pairs, validation_slice
-from .trunk import TRAINED_SHARE, split_module
+from .trunk import TAIL_FLOP_BUDGET, split_module
 
 __all__ = [
     "align_encoder", "AlignmentInterrupted",
     "gradient_reversal", "GradientReversal", "dann_lambda", "dann_learning_rate", "make_discriminator",
     "seeded_linear", "DANN_GAMMA", "DANN_LR_ALPHA", "DANN_LR_BETA", "DISCRIMINATOR_HIDDEN",
-    "split_pairs", "validation_slice", "VALIDATION_FRACTION", "split_module", "TRAINED_SHARE",
+    "split_pairs", "validation_slice", "VALIDATION_FRACTION", "split_module", "TAIL_FLOP_BUDGET",
     "judge", "settle",
     "paired_drift_loss", "paired_loss", "paired_variance", "mean_matching_loss", "anchor_loss", "domain_loss",
     "whitening",

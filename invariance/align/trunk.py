@@ -18,11 +18,15 @@ from ..errors import InvalidParameter, InvarianceError
 _SPLIT_RTOL = 1e-4
 # Images the split is checked on: enough for batch-shaped code paths, cheap (common practice).
 SPLIT_CHECK_IMAGES = 4
-# Share of the encoder's parameters the default tail holds: the smallest run of last stages
-# with at least half of them (workbench CNN: block3, 75%; ResNet-18: layer4, 75%; a small
-# ViT: its last encoder layers). Fine-tuning the top of a network is the usual transfer
-# practice (Yosinski et al., NeurIPS 2014, from memory); one half is common practice.
-TRAINED_SHARE = 0.5
+# Forward floating-point operations per image (as torch.utils.flop_counter counts them)
+# that the default trainable tail may cost: the earliest stage whose tail fits trains. The
+# budget is what fits the 3-minute target with the default 800 steps on a 2-core machine:
+# ResNet-18 at 64 px trained from layer4 (67 M) in 151-155 s there, so 180 / 155 x 67 M =
+# 78 M, rounded down; from layer3 (134 M) or whole (296 M) it would not fit. The panel's
+# small CNNs and ViT (6-25 M) train whole: that closed more of their held-out gap than
+# their last stages did (workbench CNN 54% against 44%, digits 38% against 14%;
+# docs/alignment.md).
+TAIL_FLOP_BUDGET = 75e6
 # Activations per tail forward when computing features without gradients; bounds memory
 # on large alignment sets (common practice).
 _FEATURE_CHUNK = 256
@@ -58,30 +62,47 @@ def _count(params) -> int:
     return sum(p.numel() for p in params)
 
 
-def _default_node(module: nn.Module) -> str:
-    """The first of the last top-level stages that together hold :data:`TRAINED_SHARE` of the parameters."""
-    children = list(module.named_children())
-    total = _count(module.parameters())
-    if total == 0 or not any(_count(child.parameters()) for _, child in children):
-        raise InvarianceError("the encoder has no top-level stage with parameters; nothing can be aligned")
-    held = 0
-    for name, child in reversed(children):
-        held += _count(child.parameters())
-        if held and held >= TRAINED_SHARE * total:
-            return name
-    return next(name for name, child in children if _count(child.parameters()))
+def _tail_flops(trunk: nn.Module, tail: nn.Module, example: torch.Tensor) -> float:
+    """Forward floating-point operations per image of ``tail`` on ``trunk(example)``."""
+    from torch.utils.flop_counter import FlopCounterMode
+
+    with torch.no_grad():
+        activation = trunk(example[:1])
+        with FlopCounterMode(display=False) as counter:
+            tail(activation)
+    return float(counter.get_total_flops())
+
+
+def _within_budget(candidates, example: torch.Tensor):
+    """The first ``(trunk, tail, node)`` of ``candidates`` whose tail fits :data:`TAIL_FLOP_BUDGET`,
+    else the last (the smallest tail)."""
+    last = None
+    for trunk, tail, node in candidates:
+        last = (trunk, tail, node)
+        if _tail_flops(trunk, tail, example) <= TAIL_FLOP_BUDGET:
+            return last
+    return last
+
+
+def _chain_candidates(module: nn.Module):
+    for name, child in module.named_children():
+        if _count(child.parameters()):
+            yield (*_chain_split(module, name), name)
 
 
 def split_module(module: nn.Module, train_from: str | None, example: torch.Tensor) -> tuple[nn.Module, nn.Module, str]:
     """Split ``module`` into a frozen trunk and a trainable tail.
 
-    The default tail is the shortest run of last stages that holds :data:`TRAINED_SHARE`
-    (half) of the encoder's parameters: the last top-level stages when the forward is the
-    plain sequence of its children (workbench CNN: ``block3``; ResNet-18: ``layer4``;
-    an ``nn.Sequential``: its last convolution(s)), otherwise the last blocks of the
-    forward's ``torch.fx`` graph (a ViT: its last encoder layers), split at a node where
-    one activation carries everything the rest needs, as torchvision's feature
-    extraction does (see :mod:`invariance.align.graph_split`).
+    The default tail is the longest one whose forward costs at most
+    :data:`TAIL_FLOP_BUDGET` floating-point operations per image on ``example``: the
+    tail starts at the earliest top-level stage with parameters that fits when the
+    forward is the plain sequence of its children (the panel's small CNNs: the whole
+    network; ResNet-18 at 64 px: ``layer4``), otherwise at the earliest node of the
+    forward's ``torch.fx`` graph that fits, where one activation carries everything the
+    rest needs, as torchvision's feature extraction does (a small ViT: the whole
+    forward, from its patch projection; see :mod:`invariance.align.graph_split`). When
+    no tail fits, the smallest one trains. The budget scales with the image size, so
+    larger images train fewer stages.
 
     The split is checked on ``example``: ``tail(trunk(x))`` must equal ``module(x)``.
 
@@ -117,10 +138,11 @@ def split_module(module: nn.Module, train_from: str | None, example: torch.Tenso
 
     names = [name for name, _ in module.named_children()]
     if train_from is None:
-        node = _default_node(module)
-        chain = _chain_split(module, node)
-        if _reproduces(module, *chain, example):
-            return (*chain, node)
+        if not any(_count(child.parameters()) for _, child in module.named_children()):
+            raise InvarianceError("the encoder has no top-level stage with parameters; nothing can be aligned")
+        whole = next(_chain_candidates(module))
+        if _reproduces(module, *whole[:2], example):  # the forward is the chain of its children
+            return _within_budget(_chain_candidates(module), example)
         return graph_split.split_graph(module, None, example)
     if train_from in names:
         chain = _chain_split(module, train_from)

@@ -236,7 +236,8 @@ _ALIGNMENT_HELP = {
     "minutes": "Wall-clock limit for the whole command (caching, training, held-out scoring); training "
                "stops early to fit it and the result says it was cut short [default: none].",
     "train_from": "First stage to train: a top-level block or a dotted submodule path (earlier stages are "
-                  "frozen and cached) [default: the last stages holding half the parameters].",
+                  "frozen and cached) [default: the earliest stage whose forward costs at most 75 MFLOP per "
+                  "image: a small encoder trains whole, ResNet-18 at 64 px from layer4].",
     "held_out_fraction": "Fraction of pairs never trained on; before/after are measured on them (0.05-0.8).",
     "anchor_weight": "Weight of the clean-feature anchor loss.",
     "paired_weight": "Weight of the paired term (the batch's relative cosine drift, as score reports it).",
@@ -246,10 +247,10 @@ _ALIGNMENT_HELP = {
     "learning_rate": "Learning rate (Adam): reached after a linear warm-up over the first tenth of the steps, "
                      "then annealed by the DANN schedule (constant for teacher).",
     "guard_margin": "Stop when a clean probe falls more than this relative margin below its start (0-1).",
-    "objective": "Alignment objective: combined (gradient reversal plus paired and mean-matching terms), "
-                 "dann (gradient reversal only), paired (paired and mean-matching terms only) or "
-                 "teacher (cluttered views pulled onto the original encoder's clean features, task "
-                 "heads on both views; pair with --train-from on small encoders).",
+    "objective": "Alignment objective: teacher (cluttered views pulled onto the original encoder's clean "
+                 "features, task heads on both views), combined (gradient reversal plus paired and "
+                 "mean-matching terms), dann (gradient reversal only) or paired (paired and mean-matching "
+                 "terms only).",
 }
 
 
