@@ -673,9 +673,9 @@ DEMO_SPEC = "python:invariance.zoo:clean_only_encoder"
 # run moves by about 6% (0.979 -> 0.917 measured), beyond the default 5%, and the
 # plumbing tests below need a run whose checkpoint is written.
 # A short run of the mechanics (splits, seeds, checkpoint, JSON keys): 40 steps are too few
-# for the defaults (the whole network, whose slice drift first rises), so the last stage
-# and the combined objective train here, as they did when these tests were written.
-RUN = AlignmentOptions(steps=40, batch_size=16, guard_margin=0.1, train_from="block3", objective="combined")
+# for the default part (the whole network, whose slice drift first rises), so the last
+# stage trains here, as it did when these tests were written.
+RUN = AlignmentOptions(steps=40, batch_size=16, guard_margin=0.1, train_from="block3")
 
 
 @pytest.fixture(scope="module")
@@ -929,7 +929,7 @@ def _figures(metrics: dict) -> dict:
 
 @pytest.mark.slow
 def test_acceptance_on_workbench_scenes(tmp_path):
-    """The clean-only demo encoder, its last block aligned on 300 generated pairs (level 3)."""
+    """The clean-only demo encoder aligned with the defaults (the whole network) on 300 generated pairs (level 3)."""
     import time
 
     from invariance.data import discover_pairs
@@ -942,11 +942,11 @@ def test_acceptance_on_workbench_scenes(tmp_path):
     start = time.perf_counter()
     # The default settings, run by steps (never by minutes, so the figures do not depend
     # on the machine's load).
-    result = align_encoder(pairs, encoder, out=tmp_path / "aligned.pt", options=AlignmentOptions(train_from="block3"),
+    result = align_encoder(pairs, encoder, out=tmp_path / "aligned.pt", options=AlignmentOptions(),
                            scoring=ScoringOptions(permutations=200), progress=False)
     minutes = (time.perf_counter() - start) / 60
     before, after = _figures(result["before"]), _figures(result["after"])
-    print(f"\nalignment of block3 on {result['align_pairs']} pairs, measured on {result['held_out_pairs']} "
+    print(f"\nalignment from {result['train_from']} on {result['align_pairs']} pairs, measured on {result['held_out_pairs']} "
           f"held-out pairs: {result['steps_run']} steps, best step {result['best_step']}, "
           f"{result['seconds'] / 60:.2f} min training, {minutes:.2f} min in all ({result['stopped_because']})")
     for key in before:
@@ -963,8 +963,10 @@ def test_acceptance_on_workbench_scenes(tmp_path):
         assert after[f"probe.{task}.clean"] >= 0.95 * before[f"probe.{task}.clean"], task
         assert after[f"probe.{task}.cluttered"] >= before[f"probe.{task}.cluttered"], task
     # The alignment's targets: at least a 30% drift drop and a 0.15 (absolute) drop of the
-    # held-out domain-classifier accuracy. Measured with the defaults (relative-drift paired
-    # term): 0.978 -> 0.744, drift 1.140 -> 0.562 (docs/alignment.md, panel table).
+    # held-out domain-classifier accuracy. Measured 2026-12-05 with the defaults (combined,
+    # the whole network): 0.978 -> 0.761, drift 1.140 -> 0.517, clean part 0.963 -> 0.963.
+    # The teacher objective reached 0.906 here, with the clean part probe falling to 0.889
+    # (docs/alignment.md, "Defaults").
     assert after["relative_drift"] <= 0.7 * before["relative_drift"]
     assert after["domain_accuracy"] <= before["domain_accuracy"] - 0.15
 
@@ -1010,6 +1012,9 @@ def test_outcome_is_judged_on_held_out_figures():
         return {"domain_classifier": {"accuracy": acc}, "paired_drift": {"relative_drift": drift},
                 "probe": {"part": {"kind": "classification", "clean": part, "cluttered": 0.3}}}
 
+    # A drift "fall" below 1% of itself (0.326 -> 0.3259) is no fall; 0.326 -> 0.32 is.
+    assert not judge(metrics(0.5, 0.326, 0.9), metrics(0.5, 0.3259, 0.9), [], 0.05, 90)[0]
+    assert judge(metrics(0.5, 0.326, 0.9), metrics(0.5, 0.32, 0.9), [], 0.05, 90)[0]
     # The issue's 128 px run: domain accuracy 0.528 -> 0.667 and drift 0.535 -> 0.550: worse.
     assert not judge(metrics(0.528, 0.535, 0.9), metrics(0.667, 0.550, 0.9), ["part"], 0.05, 90)[0]
     # Drift falls but the domain accuracy rises beyond sampling noise: 1.96 * sqrt(2 p (1 - p) / 180)

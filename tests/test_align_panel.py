@@ -55,14 +55,14 @@ def runs(panel, tmp_path_factory):
 
 
 # Targets not met yet (issue 11 stays open); strict, so a run that meets them fails here
-# until the mark is removed. Measured 2026-12-05 with the defaults (teacher; the whole
+# until the mark is removed. Measured 2026-12-05 with the defaults (combined; the whole
 # network, within the compute budget), 800 steps, split seed 0, 600 scene pairs and 797
 # digit pairs. The Sequential CNN's part target is above what supervised training on
 # these pairs reaches (18-31% of the gap, docs/alignment.md).
 _NOT_YET = {
     "sequential": "not improved (the original is kept): the held-out clean part probe fell 0.778 -> 0.611",
-    "vit": "-17% of the held-out part gap closed (cluttered 0.278 -> 0.222), clean part 0.611 -> 0.556",
-    "digits": "55% of the digit gap closed (target 60%), drift fell 77%",
+    "vit": "17% of the held-out part gap closed (cluttered 0.278 -> 0.333), drift fell 24%",
+    "digits": "2% of the digit gap closed (target 60%; teacher: 55%), drift fell 37%",
 }
 
 
@@ -94,14 +94,37 @@ def test_no_loss_term_grows_by_orders_of_magnitude_early(runs, name):
         assert values.max() <= 100 * max(values[0], 1.0), (term, values)
 
 
-def test_default_alignment_closes_much_of_the_digit_gap(runs):
-    # Measured 2026-12-05, split seed 0 (the default: teacher, whole network): 55% of the
-    # digit gap; seeds 1 and 2 closed 29% and 29% (docs/alignment.md). The bound leaves
-    # room for a few of the 72 scored digits either way.
-    result, figures = runs["digits"]["result"], runs["digits"]["summary"]
+@pytest.fixture(scope="session")
+def teacher_digits(panel, tmp_path_factory):
+    """The ``teacher`` objective on blended digits, from the default stage (the whole network; split seed 0)."""
+    encoder, pairs = panel["digits"]
+    lines = []
+    result = align_encoder(pairs, encoder, out=tmp_path_factory.mktemp("teacher") / "digits.pt",
+                           options=AlignmentOptions(objective="teacher"),
+                           scoring=ScoringOptions(permutations=100), progress=lines.append)
+    return {"result": result, "lines": lines, "summary": panel_module.summary(result)}
+
+
+def test_teacher_objective_closes_much_of_the_digit_gap(teacher_digits):
+    # Measured 2026-12-05, split seed 0: 0.236 -> 0.625 on 72 scored held-out digits, 55% of
+    # the gap (combined, the default: 2%); seeds 1 and 2 closed 29% and 29%
+    # (docs/alignment.md). The bound leaves room for a few probe errors either way.
+    result, figures = teacher_digits["result"], teacher_digits["summary"]
+    print(f"\nteacher digits: {figures}")
     assert result["improved"], result["outcome"]
+    assert result["train_from"] == "0"  # the whole network fits the compute budget
     assert figures["gap_closed"] >= 0.40, figures["per_task"]
+    assert figures["worst_clean_change"] >= -0.05
     assert figures["drift_fall"] >= 0.30
+    curves = result["curves"]
+    for term in ("anchor", "task", "paired"):  # scale-free: nothing grows 100-fold early
+        values = [v for step, v in zip(curves["step"], curves[f"loss_{term}"]) if step <= 100]
+        assert max(values) <= 100 * max(values[0], 1.0), (term, values)
+
+
+@pytest.mark.xfail(strict=True, reason="teacher, split seed 0: 55% of the digit gap closed, short of 60%")
+def test_teacher_objective_reaches_the_digit_target(teacher_digits):
+    assert teacher_digits["summary"]["gap_closed"] >= 0.60
 
 
 @pytest.mark.parametrize("name", REDUCED)

@@ -63,7 +63,7 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
     clean one in whitened coordinates, over its starting value (see
     :mod:`invariance.align.losses`); ``options.objective`` keeps all (``combined``), the
     reversal only (``dann``) or the paired and mean terms only (``paired``). The
-    ``teacher`` objective (the default) drops the reversal and the mean term, pulls each
+    ``teacher`` objective drops the reversal and the mean term, pulls each
     cluttered view onto the original encoder's clean feature of its pair (per feature,
     in units of its clean spread), lets the held task heads read the cluttered view too,
     and keeps the learning rate constant (on blended digits, the whole network trained,
@@ -97,7 +97,7 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
         train_from=None (the earliest stage within the compute budget), held_out_fraction=0.3,
         anchor_weight=10, paired_weight=3, mean_weight=10, task_weight=1,
         learning_rate=0.001, guard_margin=0.05, batch_size=32 (pairs per step),
-        objective=teacher.
+        objective=combined.
     scoring : ScoringOptions, optional
         Seed of the splits, initialisation and batch order, and the before/after scoring;
         default ``ScoringOptions()``: seed=0, permutations=1000, folds=5, tsne=False.

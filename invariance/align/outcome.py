@@ -12,6 +12,12 @@ import math
 from .monitor import _Z_95, _allowed_fall
 
 
+# Smallest relative fall of the held-out drift that counts as a fall: a change below it does
+# not show in the three decimals the tool reports. A learning rate of 1e-8 on a whole
+# network moved the drift 0.326 -> 0.326 and was otherwise judged improved (common practice).
+MIN_DRIFT_FALL = 0.01
+
+
 def _value(metrics: dict, group: str, key: str) -> float:
     value = (metrics.get(group) or {}).get(key)
     return math.nan if value is None else float(value)
@@ -37,7 +43,8 @@ def _bootstrap_noise(p0: dict, p1: dict) -> float | None:
 def judge(before: dict, after: dict, carried: list[str], margin: float, n_pairs: int) -> tuple[bool, str]:
     """Whether ``after`` beats ``before`` on the held-out pairs, and why (one plain line).
 
-    Better means: the relative paired drift fell, the domain classifier's accuracy did not
+    Better means: the relative paired drift fell (by :data:`MIN_DRIFT_FALL` of itself
+    or more), the domain classifier's accuracy did not
     rise beyond sampling noise (1.96 standard errors of a difference of two accuracies on
     ``n_pairs`` pairs per view, two-proportion z, common practice), and every task the
     encoder carries kept its clean probe within the guard's
@@ -65,8 +72,9 @@ def judge(before: dict, after: dict, carried: list[str], margin: float, n_pairs:
     drift0 = _value(before, "paired_drift", "relative_drift")
     drift1 = _value(after, "paired_drift", "relative_drift")
     acc0, acc1 = _value(before, "domain_classifier", "accuracy"), _value(after, "domain_classifier", "accuracy")
-    if not drift1 < drift0:
-        return False, f"held-out relative drift did not fall ({drift0:.3f} -> {drift1:.3f})"
+    if not drift1 < (1.0 - MIN_DRIFT_FALL) * drift0:
+        return False, (f"held-out relative drift did not fall by {MIN_DRIFT_FALL:.0%} or more "
+                       f"({drift0:.3f} -> {drift1:.3f})")
     # the domain classifier sees both views of each held-out pair: 2 * n_pairs images
     noise = _Z_95 * math.sqrt(2.0 * acc0 * (1.0 - acc0) / (2 * n_pairs)) if math.isfinite(acc0) else 0.0
     if not acc1 - acc0 <= noise:  # NaN compares False: an accuracy that cannot be computed fails

@@ -24,8 +24,8 @@ SPLIT_CHECK_IMAGES = 4
 # ResNet-18 at 64 px trained from layer4 (67 M) in 151-155 s there, so 180 / 155 x 67 M =
 # 78 M, rounded down; from layer3 (134 M) or whole (296 M) it would not fit. The panel's
 # small CNNs and ViT (6-25 M) train whole: that closed more of their held-out gap than
-# their last stages did (workbench CNN 54% against 44%, digits 38% against 14%;
-# docs/alignment.md).
+# their last stages did (workbench CNN 52% against 44% with the default objective; digits
+# 38% against 14% with teacher; docs/alignment.md).
 TAIL_FLOP_BUDGET = 75e6
 # Activations per tail forward when computing features without gradients; bounds memory
 # on large alignment sets (common practice).

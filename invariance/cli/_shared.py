@@ -247,10 +247,10 @@ _ALIGNMENT_HELP = {
     "learning_rate": "Learning rate (Adam): reached after a linear warm-up over the first tenth of the steps, "
                      "then annealed by the DANN schedule (constant for teacher).",
     "guard_margin": "Stop when a clean probe falls more than this relative margin below its start (0-1).",
-    "objective": "Alignment objective: teacher (cluttered views pulled onto the original encoder's clean "
-                 "features, task heads on both views), combined (gradient reversal plus paired and "
-                 "mean-matching terms), dann (gradient reversal only) or paired (paired and mean-matching "
-                 "terms only).",
+    "objective": "Alignment objective: combined (gradient reversal plus paired and mean-matching terms), "
+                 "dann (gradient reversal only), paired (paired and mean-matching terms only) or "
+                 "teacher (cluttered views pulled onto the original encoder's clean features, task "
+                 "heads on both views; it closed the most of the gap on blended digits).",
 }
 
 
