@@ -106,16 +106,20 @@ def _stage_name(module: nn.Module, nodes: list[fx.Node], cut: int) -> str:
     return name
 
 
+def _graph_candidates(module, traced, cuts):
+    """``(trunk, tail, cut)`` for the whole forward, then every cut, whose tail has parameters."""
+    for cut in [_WHOLE, *cuts]:
+        trunk, tail = (nn.Identity(), module) if cut == _WHOLE else _pieces(traced, cut)
+        if _parameter_count(tail):
+            yield trunk, tail, cut
+
+
 def _choose_cut(module, traced, cuts, train_from, example) -> int:
     nodes = list(traced.graph.nodes)
     if train_from is None:
-        from .trunk import TAIL_FLOP_BUDGET, _tail_flops
+        from .trunk import _within_budget  # the chain split's rule, on the graph's candidates
 
-        for cut in [_WHOLE, *cuts]:
-            trunk, tail = (nn.Identity(), module) if cut == _WHOLE else _pieces(traced, cut)
-            if _parameter_count(tail) and _tail_flops(trunk, tail, example) <= TAIL_FLOP_BUDGET:
-                return cut
-        return max(c for c in cuts if _parameter_count(_pieces(traced, c)[1]))
+        return _within_budget(_graph_candidates(module, traced, cuts), example)[2]
     starts = [i for i, n in enumerate(nodes)
               if (_module_path(n) or "") == train_from or (_module_path(n) or "").startswith(train_from + ".")]
     if not starts:

@@ -202,6 +202,11 @@ def objective_weights(options) -> dict:
     return weights
 
 
+def _warmup_steps(options) -> float:
+    """Steps of the linear learning-rate warm-up (at least one)."""
+    return max(1.0, WARMUP_SHARE * options.steps)
+
+
 def learning_rate(options, p: float) -> float:
     """The learning rate at training progress ``p``: a linear warm-up, then DANN's annealing
     (constant without an adversary).
@@ -216,7 +221,7 @@ def learning_rate(options, p: float) -> float:
     stayed under 1.4 (gradual warm-up: Goyal et al., "Accurate, large minibatch SGD",
     2017, section 2.2).
     """
-    warm = min(1.0, (p * options.steps + 1.0) / max(1.0, WARMUP_SHARE * options.steps))
+    warm = min(1.0, (p * options.steps + 1.0) / _warmup_steps(options))
     if options.objective == "teacher":
         return warm * options.learning_rate
     return warm * dann_learning_rate(p, options.learning_rate)
@@ -280,7 +285,7 @@ class _Training:
         # the warm-up do not count: the features are in transit there (the workbench CNN
         # trained whole dipped from 0.97 to 0.86 over steps 20-40 and was back at 0.93 by
         # step 80, where it went on to close 57% of the held-out gap; docs/alignment.md).
-        warming = step <= WARMUP_SHARE * self.options.steps
+        warming = step <= _warmup_steps(self.options)
         self.failures = self.failures + 1 if failure and not warming else 0
         return failure if self.failures >= GUARD_PATIENCE else None
 
