@@ -1098,6 +1098,38 @@ def test_held_out_r2_noise_comes_from_the_scores_bootstraps():
     assert judge(metrics(1.0, 0.5, 0.12), metrics(0.5, 0.25, 0.12), ["x"], 0.05, 180)[0]
 
 
+def test_a_state_that_reads_the_task_worse_off_cluttered_views_is_not_improved():
+    from invariance.align.outcome import judge
+
+    def metrics(drift, cluttered):
+        probe = {"kind": "classification", "clean": 0.9, "cluttered": cluttered, "n_test": 54}
+        return {"domain_classifier": {"accuracy": 0.8}, "paired_drift": {"relative_drift": drift},
+                "probe": {"part": probe}}
+
+    # Two-proportion z (common practice): 1.96 * sqrt(2 * 0.4 * 0.6 / 54) = 0.185 of
+    # accuracy. The drift halves and the clean probe holds in all three; a cluttered probe
+    # falling 0.40 -> 0.20 is beyond the noise, 0.40 -> 0.30 within it.
+    improved, reason = judge(metrics(1.0, 0.40), metrics(0.5, 0.20), ["part"], 0.05, 180)
+    assert not improved and reason == "held-out cluttered probe 'part' fell (0.400 -> 0.200)"
+    assert judge(metrics(1.0, 0.40), metrics(0.5, 0.30), ["part"], 0.05, 180)[0]
+    assert judge(metrics(1.0, 0.40), metrics(0.5, 0.60), ["part"], 0.05, 180)[0]
+    # a task the encoder does not carry is not judged
+    assert judge(metrics(1.0, 0.40), metrics(0.5, 0.20), [], 0.05, 180)[0]
+    # below the no-feature baseline a cluttered probe reads nothing, so falling further loses
+    # nothing (an extrapolating regression probe: R^2 -15.1 -> -42.4); one falling from
+    # above the baseline to far below it is judged down to the baseline: 0.40 -> 0.25
+    floored = {"baseline": 0.25}
+    before, after = metrics(1.0, 0.20), metrics(0.5, 0.05)
+    before["probe"]["part"].update(floored)
+    assert judge(before, after, ["part"], 0.05, 180)[0]
+    before, after = metrics(1.0, 0.40), metrics(0.5, 0.0)
+    before["probe"]["part"].update(floored)
+    assert judge(before, after, ["part"], 0.05, 180)[0]  # 0.15 below 0.40 is within 0.185
+    before["probe"]["part"].update(baseline=0.1)
+    improved, reason = judge(before, after, ["part"], 0.05, 180)
+    assert not improved and "fell (0.400 -> 0.000)" in reason
+
+
 @pytest.mark.parametrize("objective, zero", [("dann", {"paired", "mean"}), ("paired", {"domain"}), ("combined", set()),
                                              ("teacher", {"domain", "mean"})])
 def test_objectives_switch_the_terms(objective, zero):

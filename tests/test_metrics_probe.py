@@ -48,7 +48,7 @@ def test_clean_accuracy_equals_a_plain_sklearn_probe(digits):
     assert result["kind"] == "classification" and result["metric"] == "accuracy"
 
 
-def test_clean_standard_error_is_the_binomial_one_for_an_accuracy(digits):
+def test_standard_errors_are_the_binomial_ones_for_an_accuracy(digits):
     # Reference: the standard error of a proportion, sqrt(p (1 - p) / n) (binomial
     # variance, common practice); the bootstrap's is within Monte Carlo noise of it.
     X, labels = digits
@@ -58,6 +58,9 @@ def test_clean_standard_error_is_the_binomial_one_for_an_accuracy(digits):
     acc, n = result["clean"], result["n_test"]
     assert 0.3 < acc < 0.95
     assert result["clean_se"] == pytest.approx(np.sqrt(acc * (1 - acc) / n), rel=0.1)
+    cluttered = result["cluttered"]
+    assert 0.2 < cluttered < 0.95 and abs(cluttered - acc) > 0.05  # a second, different proportion
+    assert result["cluttered_se"] == pytest.approx(np.sqrt(cluttered * (1 - cluttered) / n), rel=0.1)
 
 
 def test_identical_features_have_no_gap(digits):

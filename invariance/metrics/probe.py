@@ -179,7 +179,8 @@ def _probe_one(clean, cluttered, values, seed, test_fraction, resamples, groups=
     }
     point = {name: _score(kind, y_test, p) for name, p in preds.items()}
     test_groups = None if groups is None else np.unique(groups[test], return_inverse=True)[1]
-    gap_ci, margin_low, clean_se = _bootstrap(kind, y_test, preds, point, seed, resamples, test_groups)
+    gap_ci, margin_low, clean_se, cluttered_se = _bootstrap(kind, y_test, preds, point, seed, resamples,
+                                                            test_groups)
     decodable = bool(margin_low > 0)
     out = {
         "kind": kind,
@@ -189,6 +190,7 @@ def _probe_one(clean, cluttered, values, seed, test_fraction, resamples, groups=
         "gap": point["clean"] - point["cluttered"],
         "gap_ci": gap_ci,
         "clean_se": clean_se,
+        "cluttered_se": cluttered_se,
         "ci_method": _CI_METHOD[kind].format(resamples) + ("" if groups is None else "; groups (episodes) resampled"),
         "baseline": point["baseline"],
         "decodable": decodable,
@@ -322,12 +324,13 @@ def _group_differences(kind, y, preds, groups, seed, resamples):
 
 def _bootstrap(kind, y, preds, point, seed, resamples, groups=None):
     """95% interval of the gap, the lower end of the clean score's margin over baseline, and
-    the clean score's bootstrap standard error.
+    the clean and the cluttered scores' bootstrap standard errors.
 
-    With groups the resampled unit, and the m of the expanded interval, is the group. The
-    standard error is the standard deviation of the resampled clean scores (Efron &
-    Tibshirani 1993, ch. 6): it assumes nothing about the errors' distribution, where the
-    normal-theory variance of R^2 is too small with heavy-tailed errors.
+    With groups the resampled unit, and the m of the expanded interval, is the group. A
+    standard error is the standard deviation of the resampled scores (Efron & Tibshirani
+    1993, ch. 6): it assumes nothing about the errors' distribution, where the
+    normal-theory variance of R^2 is too small with heavy-tailed errors. The cluttered
+    score of a resample is its clean score less its gap (the same resampled pairs).
     """
     if groups is None:
         gaps, margins, cleans = _resampled_differences(kind, y, preds, seed, resamples)
@@ -338,7 +341,7 @@ def _bootstrap(kind, y, preds, point, seed, resamples, groups=None):
     symmetric = kind == "regression"
     gap = _interval(gaps, point["clean"] - point["cluttered"], m, symmetric)
     margin = _interval(margins, point["clean"] - point["baseline"], m, symmetric)
-    return list(gap), margin[0], float(np.std(cleans, ddof=1))
+    return list(gap), margin[0], float(np.std(cleans, ddof=1)), float(np.std(cleans - gaps, ddof=1))
 
 
 _CI_METHOD = {
@@ -386,7 +389,8 @@ def linear_probes(
         cluttered predictions on the same pairs; the expanded percentile interval for
         accuracy, the same width centred on the gap for R^2; Efron & Tibshirani 1993,
         Hesterberg 2015), ``clean_se`` (the clean score's standard error: the standard
-        deviation of the same resamples' clean scores),
+        deviation of the same resamples' clean scores), ``cluttered_se`` (the same for
+        the cluttered score),
         ``ci_method``, ``baseline`` (score of the no-feature predictor fitted on the
         training pairs: the rate of the training majority class among the held-out
         pairs, or the R^2 of predicting the training mean, <= 0), ``decodable`` (the
