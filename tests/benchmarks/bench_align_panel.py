@@ -86,7 +86,8 @@ def main(argv=None) -> int:
                 if args.json:
                     raw.append({"encoder": name, "objective": objective, "seed": seed, "summary": rows[-1],
                                 "before": result["before"]["probe"], "after": result["after"]["probe"],
-                                "improved": result["improved"], "train_from": result["train_from"]})
+                                "improved": result["improved"], "outcome": result["outcome"],
+                                "stopped_because": result["stopped_because"], "train_from": result["train_from"]})
                     Path(args.json).write_text(json.dumps(raw, indent=1, default=float))
             print(f"{name:<11} {objective:<9} {_fmt([r['gap_closed'] for r in rows]):<20} "
                   f"{_fmt([r['worst_clean_change'] for r in rows]):<20} "
