@@ -86,6 +86,9 @@ def main(argv=None) -> int:
                 if args.json:
                     raw.append({"encoder": name, "objective": objective, "seed": seed, "summary": rows[-1],
                                 "before": result["before"]["probe"], "after": result["after"]["probe"],
+                                "drift": [{k: side.get("paired_drift", {}).get(k)
+                                           for k in ("relative_drift", "relative_drift_ci")}
+                                          for side in (result["before"], result["after"])],
                                 "improved": result["improved"], "outcome": result["outcome"],
                                 "stopped_because": result["stopped_because"], "train_from": result["train_from"]})
                     Path(args.json).write_text(json.dumps(raw, indent=1, default=float))
