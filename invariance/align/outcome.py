@@ -40,29 +40,11 @@ def _bootstrap_noise(p0: dict, p1: dict, view: str = "clean") -> float | None:
     return _Z_95 * math.sqrt(se0 * se0 + se1 * se1)
 
 
-def _drift_noise(before: dict, after: dict) -> float:
-    """1.96 standard errors of the difference of two relative drifts, from their intervals.
-
-    Each drift carries a 95% bootstrap interval (``relative_drift_ci``,
-    :func:`invariance.metrics.drift.paired_drift`); its half-width over 1.96 stands for a
-    standard error, and the two drifts are treated as independent (``se0^2 + se1^2``),
-    which overstates the noise of a before/after difference on the same pairs: a fall
-    this rule accepts is not noise. 0 when either interval is missing.
-    """
-    ses = []
-    for metrics in (before, after):
-        ci = (metrics.get("paired_drift") or {}).get("relative_drift_ci")
-        if not ci or len(ci) != 2 or not all(math.isfinite(float(v)) for v in ci):
-            return 0.0
-        ses.append((float(ci[1]) - float(ci[0])) / (2.0 * _Z_95))
-    return _Z_95 * math.sqrt(ses[0] ** 2 + ses[1] ** 2)
-
-
 def judge(before: dict, after: dict, carried: list[str], margin: float, n_pairs: int) -> tuple[bool, str]:
     """Whether ``after`` beats ``before`` on the held-out pairs, and why (one plain line).
 
-    Better means: the relative paired drift fell by :data:`MIN_DRIFT_FALL` of itself or
-    more and beyond its sampling noise (:func:`_drift_noise`), the domain classifier's accuracy did not
+    Better means: the relative paired drift fell (by :data:`MIN_DRIFT_FALL` of itself
+    or more), the domain classifier's accuracy did not
     rise beyond sampling noise (1.96 standard errors of a difference of two accuracies on
     ``n_pairs`` pairs per view, two-proportion z, common practice), and every task the
     encoder carries kept its clean probe, and its cluttered probe, within the guard's
@@ -94,10 +76,9 @@ def judge(before: dict, after: dict, carried: list[str], margin: float, n_pairs:
     drift0 = _value(before, "paired_drift", "relative_drift")
     drift1 = _value(after, "paired_drift", "relative_drift")
     acc0, acc1 = _value(before, "domain_classifier", "accuracy"), _value(after, "domain_classifier", "accuracy")
-    needed = max(MIN_DRIFT_FALL * drift0, _drift_noise(before, after))
-    if not drift0 - drift1 > needed:  # NaN compares False: a drift that cannot be computed fails
-        return False, (f"held-out relative drift did not fall beyond its noise ({drift0:.3f} -> {drift1:.3f}; "
-                       f"a fall of more than {needed:.3f} was needed)")
+    if not drift1 < (1.0 - MIN_DRIFT_FALL) * drift0:
+        return False, (f"held-out relative drift did not fall by {MIN_DRIFT_FALL:.0%} or more "
+                       f"({drift0:.3f} -> {drift1:.3f})")
     # the domain classifier sees both views of each held-out pair: 2 * n_pairs images
     noise = _Z_95 * math.sqrt(2.0 * acc0 * (1.0 - acc0) / (2 * n_pairs)) if math.isfinite(acc0) else 0.0
     if not acc1 - acc0 <= noise:  # NaN compares False: an accuracy that cannot be computed fails
