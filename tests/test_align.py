@@ -1128,6 +1128,15 @@ def test_a_state_that_reads_the_task_worse_off_cluttered_views_is_not_improved()
     before["probe"]["part"].update(baseline=0.1)
     improved, reason = judge(before, after, ["part"], 0.05, 180)
     assert not improved and "fell (0.400 -> 0.000)" in reason
+    # the same floor holds for the clean view: a clean probe at the baseline has nothing to lose
+    before, after = metrics(1.0, 0.40), metrics(0.5, 0.40)
+    before["probe"]["part"].update(clean=0.25, baseline=0.25)
+    after["probe"]["part"].update(clean=0.05)
+    assert judge(before, after, ["part"], 0.05, 180)[0]
+    # above a baseline of 0.05 it falls 0.20, beyond 1.96 * sqrt(2 * 0.25 * 0.75 / 54) = 0.163
+    before["probe"]["part"].update(baseline=0.05)
+    improved, reason = judge(before, after, ["part"], 0.05, 180)
+    assert not improved and reason == "held-out clean probe 'part' fell (0.250 -> 0.050)"
 
 
 @pytest.mark.parametrize("objective, zero", [("dann", {"paired", "mean"}), ("paired", {"domain"}), ("combined", set()),

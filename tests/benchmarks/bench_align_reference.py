@@ -127,12 +127,12 @@ def main(argv=None) -> int:
     start = time.perf_counter()
     for step in range(1, args.steps + 1):
         batch = torch.as_tensor(rng.choice(train, BATCH, replace=False))
-        with torch.no_grad():
-            goal = (original(x_clean[batch]) - mean) / spread
         z_clut = (model(x_clut[batch]) - mean) / spread
         if args.objective == "target":
             loss = F.cross_entropy(head(z_clut), labels[batch])
         else:
+            with torch.no_grad():
+                goal = (original(x_clean[batch]) - mean) / spread
             z_clean = (model(x_clean[batch]) - mean) / spread
             loss = ((z_clut - goal) ** 2).mean() + ((z_clean - goal) ** 2).mean()
         if args.task_weight and args.objective == "pairs":
