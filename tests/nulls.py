@@ -19,6 +19,9 @@ photographs of one scene; common practice, chosen to stress tests that ignore pa
     view = ReLU(scene + 0.3 * noise - 1), scene and noise N(0, I): about 17% of the
     entries are non-zero (P(N(0, 1.09) > 1) = 0.169), like post-ReLU encoder features.
 
+:func:`encoder_states` gives two encoder states' features of the same scenes, for the
+paired test of a drift's change.
+
 Import from tests as ``from nulls import KINDS, null, shifted`` (pytest puts ``tests/``
 on ``sys.path``, as for ``conftest``).
 
@@ -114,6 +117,50 @@ def shifted(kind, n, d, rng, shift=0.35, fraction=0.25):
     k = max(1, int(round(fraction * d)))
     b[:, :k] += shift * sd
     return _observe(kind, a), _observe(kind, b)
+
+
+def encoder_states(kind, n, d, rng, *, shared_clutter=0.8, scale_after=1.0):
+    """Paired features of the same scenes from two encoder states (before and after).
+
+    Both states see the same scene content and part of the same clutter (share
+    ``shared_clutter`` of its variance), so their per-pair drifts are correlated, as an
+    encoder's before and after alignment are. With ``scale_after`` 1 the two states are
+    exchangeable: the true change of any drift statistic is 0 (the null of
+    :func:`invariance.metrics.drift.paired_drift_change`); below 1 the second state's
+    clutter is weaker (a real fall).
+
+    Kinds, as :func:`null`'s: ``iid`` (Gaussian, every scene cluttered equally);
+    ``paired_shared`` (a lognormal clutter strength per scene, exp(N(0, 0.5^2)), common
+    to both states: some scenes are far more cluttered than others); ``heavy_tailed``
+    (the same with Student t scene, clutter and noise); ``relu_sparse`` (the same, then a
+    random ReLU layer of 4 d units, about 70% zeros).
+
+    Returns
+    -------
+    list of two (clean, cluttered) tuples of ndarrays of shape (n, d) (4 d for relu_sparse)
+    """
+    rng = _rng(rng)
+    if kind not in KINDS:
+        raise ValueError(f"unknown kind {kind!r}; choose one of {KINDS}")
+    if kind == "heavy_tailed":
+        def noise(*shape):
+            return rng.standard_t(T_DOF, size=shape)
+    else:
+        def noise(*shape):
+            return rng.standard_normal(shape)
+    scene, clutter = noise(n, d), noise(n, d)
+    strength = np.ones((n, 1)) if kind == "iid" else np.exp(0.5 * rng.standard_normal((n, 1)))
+    layer = rng.standard_normal((d, 4 * d)) / np.sqrt(d)
+    states = []
+    for scale in (1.0, scale_after):
+        own = np.sqrt(shared_clutter) * clutter + np.sqrt(1.0 - shared_clutter) * noise(n, d)
+        clean = scene + NOISE * noise(n, d)
+        cluttered = scene + scale * strength * own + NOISE * noise(n, d)
+        if kind == "relu_sparse":
+            # a small constant keeps every row non-zero (a cosine needs a norm)
+            clean, cluttered = (np.maximum(x @ layer - RELU_OFFSET, 0.0) + 1e-3 for x in (clean, cluttered))
+        states.append((clean, cluttered))
+    return states
 
 
 # ---------------------------------------------------------------- episode files under the null

@@ -739,7 +739,7 @@ RESULT_KEYS = {"before", "after", "held_out_pairs", "align_pairs", "validation_p
                "checkpoint", "train_from", "stopped_because", "steps_run", "best_step", "seconds", "settings",
                "curves"}
 # Added by the honest outcome and the time budget; the keys above stay as they were.
-NEW_RESULT_KEYS = {"improved", "outcome", "cut_short", "estimated_seconds", "task_check"}
+NEW_RESULT_KEYS = {"improved", "outcome", "cut_short", "estimated_seconds", "task_check", "drift_change"}
 # The result JSON's alignment.settings keys, as written before options became objects.
 SETTINGS_KEYS = {"train_from", "steps", "minutes", "batch_size", "learning_rate", "guard_margin", "anchor_weight",
                  "task_weight", "paired_weight", "mean_weight", "held_out_fraction", "seed", "tasks", "objective"}
@@ -748,6 +748,11 @@ SETTINGS_KEYS = {"train_from", "steps", "minutes", "batch_size", "learning_rate"
 def test_result_and_settings_keep_their_json_keys(two_runs):
     result = two_runs["first"]
     assert set(result) == RESULT_KEYS | NEW_RESULT_KEYS
+    # the judged fall is the before/after drifts' (same held-out pairs, paired interval)
+    change, before, after = result["drift_change"], result["before"], result["after"]
+    assert change["drift_before"] == pytest.approx(before["paired_drift"]["relative_drift"])
+    assert change["drift_after"] == pytest.approx(after["paired_drift"]["relative_drift"])
+    assert change["relative_fall_ci"][0] <= change["relative_fall"] <= change["relative_fall_ci"][1]
     settings = result["settings"]
     assert set(settings) == SETTINGS_KEYS
     assert (settings["steps"], settings["batch_size"], settings["seed"]) == (RUN.steps, RUN.batch_size, 0)

@@ -70,6 +70,11 @@ def test_align_writes_checkpoint_and_result_with_the_given_weights(aligned):
     # stdout: before/after and the caution
     assert "before" in res.output and "after" in res.output and "checkpoint:" in res.output
     assert "improved: held-out relative drift" in res.output
+    # the judged fall and its paired interval, as printed and as stored
+    fall = result["alignment"]["drift_change"]
+    low, high = fall["relative_fall_ci"]
+    assert low > 0
+    assert f"drift fall       {fall['relative_fall']:.1%} (95% interval {low:.1%} to {high:.1%}" in res.output
     assert "not a certificate" in res.output
 
 

@@ -14,6 +14,7 @@ from .._io import check_writable
 from ..encoders import Encoder
 from ..errors import InvalidParameter
 from ..data import label_columns, pair_groups
+from ..metrics.drift import paired_drift_change
 from ..options import AlignmentOptions, ExtractionOptions, ScoringOptions, options_or_default
 from ..progress import as_reporter
 from .heads import _build_tasks, _check_labels, _standardiser
@@ -77,7 +78,8 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
     guard is kept, and training stops when a carried clean probe stays more than
     ``options.guard_margin`` below its start for three checks. The kept state is then
     judged on the held-out pairs, and its checkpoint is written only when it beats the
-    original there (``improved``). The defaults and the measurements that chose them are
+    original there (``improved``; the drift's fall must clear the noise of a paired
+    bootstrap over the held-out pairs). The defaults and the measurements that chose them are
     in ``docs/alignment.md``.
 
     Every option is validated (by its options object) before any work, and the caller's
@@ -121,9 +123,11 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
         ``steps_run``, ``best_step``, ``seconds``, ``settings`` and ``curves``; and
         ``improved`` (whether the kept state beat the original on the held-out pairs; when
         false no checkpoint is written and ``checkpoint`` is None), ``outcome`` (why, one
-        line), ``cut_short`` (the minutes limit stopped training), ``estimated_seconds``
-        and ``task_check`` (per task: clean probe on the validation slice, the floor it had
-        to beat, and whether the encoder carries it).
+        line), ``cut_short`` (the minutes limit stopped training), ``estimated_seconds``,
+        ``task_check`` (per task: clean probe on the validation slice, the floor it had
+        to beat, and whether the encoder carries it) and ``drift_change`` (the held-out
+        drift's relative fall with its paired bootstrap interval,
+        :func:`invariance.metrics.drift.paired_drift_change`).
 
     Raises
     ------
@@ -160,7 +164,7 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
     _announce(reporter, node, run, verdicts, options)
     held_out = pairs.subset(held_idx)
     scoring_start = time.perf_counter()
-    before = _held_out_metrics(held_out, encoder, scoring, extraction)
+    before, before_features = _held_out_metrics(held_out, encoder, scoring, extraction)
     deadline = _training_deadline(options, started, time.perf_counter() - scoring_start)
     audit = None if batch_callback is None else (lambda pos: batch_callback(align_idx[pos]))
     state, info = train(run, options, reporter, audit, deadline)
@@ -173,8 +177,9 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
     if info["cut_short"]:
         reporter.note(f"align: cut short by the {options.minutes} minute limit after {info['steps_run']} of "
                       f"{options.steps} steps; the figures depend on this machine's speed")
-    after, improved, reason = _measure_and_keep(out, encoder, aligned, pairs, settings, info, held_idx,
-                                                (before, carried, options.guard_margin), scoring, extraction)
+    after, improved, reason, change = _measure_and_keep(
+        out, encoder, aligned, pairs, settings, info, held_idx,
+        (before, before_features, carried, options.guard_margin), scoring, extraction)
     reporter.note(f"align: {'improved' if improved else 'not improved'}: {reason}")
     return {
         "before": before, "after": after,
@@ -182,7 +187,7 @@ def align_encoder(pairs, encoder, *, out, options: AlignmentOptions | None = Non
         "held_out_indices": held_idx.tolist(), "checkpoint": str(out) if improved else None, "train_from": node,
         "stopped_because": info["stopped_because"], "steps_run": info["steps_run"], "best_step": info["best_step"],
         "seconds": round(info["seconds"], 3), "settings": settings, "curves": info["curves"],
-        "improved": improved, "outcome": reason, "cut_short": info["cut_short"],
+        "improved": improved, "outcome": reason, "drift_change": change, "cut_short": info["cut_short"],
         "estimated_seconds": round(info["estimated_seconds"], 1), "task_check": verdicts,
     }
 
@@ -219,19 +224,23 @@ def _announce(reporter, node, run, verdicts, options) -> None:
 
 def _measure_and_keep(out, encoder, aligned, pairs, settings, info, held_idx, judged, scoring, extraction):
     """Save the kept state beside ``out``, score it on the held-out pairs, keep it only if better."""
-    before, carried, margin = judged
+    before, before_features, carried, margin = judged
+    held_out = pairs.subset(held_idx)
     staging = out.with_name(f".{out.name}.unjudged")
     _save(staging, encoder, aligned, pairs, settings, info, held_idx)
     try:
-        after = _held_out_metrics(pairs.subset(held_idx), _reload(staging, encoder), scoring, extraction)
-        improved, reason = judge(before, after, carried, margin, len(held_idx))
+        after, after_features = _held_out_metrics(held_out, _reload(staging, encoder), scoring, extraction)
+        # the same held-out pairs before and after, resampled together (a paired bootstrap)
+        change = paired_drift_change(before_features, after_features, seed=scoring.seed,
+                                     groups=pair_groups(held_out))
+        improved, reason = judge(before, after, carried, margin, len(held_idx), change)
         if improved:
             os.replace(staging, out)
     finally:
         staging.unlink(missing_ok=True)
     if not improved:
         reason += "; no checkpoint written: the original encoder stays the better one"
-    return after, improved, reason
+    return after, improved, reason, change
 
 
 def _prepare(pairs, encoder, options, indices, batch_size, seed):
@@ -268,14 +277,16 @@ def _reload(out: Path, encoder):
                         trusted_code=(encoder.source.get("spec", encoder.spec),))
 
 
-def _held_out_metrics(pairs, encoder, scoring: ScoringOptions, extraction: ExtractionOptions) -> dict:
+def _held_out_metrics(pairs, encoder, scoring: ScoringOptions, extraction: ExtractionOptions) -> tuple[dict, tuple]:
+    """Held-out metrics (as ``invariance score``) and the ``(clean, cluttered)`` features behind them."""
     from ..encoders import extract_features
     from ..scoring import score_features
 
     clean, cluttered = extract_features(pairs, encoder, options=extraction, progress=False)["output"]
     tasks, factors = label_columns(pairs)
-    return score_features(clean, cluttered, tasks=tasks, factors=factors, names=list(pairs.names),
-                          options=scoring)["metrics"]
+    metrics = score_features(clean, cluttered, tasks=tasks, factors=factors, names=list(pairs.names),
+                             options=scoring)["metrics"]
+    return metrics, (clean, cluttered)
 
 
 def _save(out, encoder, aligned, pairs, settings, info, held_idx) -> None:

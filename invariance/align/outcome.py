@@ -40,11 +40,13 @@ def _bootstrap_noise(p0: dict, p1: dict, view: str = "clean") -> float | None:
     return _Z_95 * math.sqrt(se0 * se0 + se1 * se1)
 
 
-def judge(before: dict, after: dict, carried: list[str], margin: float, n_pairs: int) -> tuple[bool, str]:
+def judge(before: dict, after: dict, carried: list[str], margin: float, n_pairs: int,
+          drift_change: dict | None = None) -> tuple[bool, str]:
     """Whether ``after`` beats ``before`` on the held-out pairs, and why (one plain line).
 
     Better means: the relative paired drift fell (by :data:`MIN_DRIFT_FALL` of itself
-    or more), the domain classifier's accuracy did not
+    or more, and, given ``drift_change``, beyond its sampling noise: the lower end of
+    the paired bootstrap interval of the fall is above 0, a one-sided test at 2.5%), the domain classifier's accuracy did not
     rise beyond sampling noise (1.96 standard errors of a difference of two accuracies on
     ``n_pairs`` pairs per view, two-proportion z, common practice), and every task the
     encoder carries kept its clean probe, and its cluttered probe, within the guard's
@@ -67,6 +69,10 @@ def judge(before: dict, after: dict, carried: list[str], margin: float, n_pairs:
         The guard margin.
     n_pairs : int
         Held-out pairs.
+    drift_change : dict, optional
+        :func:`invariance.metrics.drift.paired_drift_change` of the original and the kept
+        state on the held-out pairs (the same pairs resampled together). Without it only
+        :data:`MIN_DRIFT_FALL` is checked.
 
     Returns
     -------
@@ -79,6 +85,11 @@ def judge(before: dict, after: dict, carried: list[str], margin: float, n_pairs:
     if not drift1 < (1.0 - MIN_DRIFT_FALL) * drift0:
         return False, (f"held-out relative drift did not fall by {MIN_DRIFT_FALL:.0%} or more "
                        f"({drift0:.3f} -> {drift1:.3f})")
+    fall_ci = (drift_change or {}).get("relative_fall_ci")
+    if fall_ci is not None and not fall_ci[0] > 0.0:
+        return False, (f"held-out relative drift did not fall beyond its sampling noise ({drift0:.3f} -> "
+                       f"{drift1:.3f}; fall {drift_change['relative_fall']:.1%}, 95% interval "
+                       f"[{fall_ci[0]:.1%}, {fall_ci[1]:.1%}] over the same pairs)")
     # the domain classifier sees both views of each held-out pair: 2 * n_pairs images
     noise = _Z_95 * math.sqrt(2.0 * acc0 * (1.0 - acc0) / (2 * n_pairs)) if math.isfinite(acc0) else 0.0
     if not acc1 - acc0 <= noise:  # NaN compares False: an accuracy that cannot be computed fails

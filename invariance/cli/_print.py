@@ -144,6 +144,11 @@ def print_alignment(result) -> None:
     for label, group, key in rows:
         before, after = metric_value(al["before"], group, key), metric_value(al["after"], group, key)
         say(f"  {label:<16} before {_fmt(before)}  after {_fmt(after)}")
+    change = al.get("drift_change") or {}
+    if change.get("relative_fall_ci"):
+        low, high = change["relative_fall_ci"]
+        say(f"  {'drift fall':<16} {change['relative_fall']:.1%} (95% interval {low:.1%} to {high:.1%}, "
+            "the same held-out pairs resampled together)")
     for name, probe in al["after"].get("probe", {}).items():
         b = al["before"].get("probe", {}).get(name, {})
         if "clean" in probe and "clean" in b:
