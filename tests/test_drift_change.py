@@ -14,6 +14,7 @@ from scipy.spatial.distance import pdist, squareform
 from scipy.stats import bootstrap
 
 from invariance.align.outcome import judge
+from invariance.errors import InvarianceError
 from invariance.metrics.drift import paired_drift, paired_drift_change
 from invariance.metrics.probe import _expanded_levels
 from nulls import KINDS, encoder_states
@@ -118,7 +119,7 @@ def test_groups_resample_whole_episodes():
 
 def test_bad_input_is_refused_or_reported():
     before, after = encoder_states("iid", 20, 16, np.random.default_rng(0))
-    with pytest.raises(ValueError, match="same pairs"):
+    with pytest.raises(InvarianceError, match="same pairs"):
         paired_drift_change(before, (after[0][:10], after[1][:10]))
     zero = (after[0].copy(), after[1].copy())
     zero[1][3] = 0.0

@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.spatial.distance import pdist, squareform
 
+from invariance.errors import InvarianceError
 from invariance.metrics.domain import _check_int, _validate_pairs, check_groups
 from invariance.metrics.probe import _expanded_levels
 
@@ -168,8 +169,8 @@ def paired_drift_change(before, after, *, seed=0, resamples=BOOTSTRAP_RESAMPLES,
     _check_int("seed", seed, 0)
     states = [_validate_pairs(*state, min_pairs=MIN_PAIRS) for state in (before, after)]
     if states[0][0].shape[0] != states[1][0].shape[0]:
-        raise ValueError(f"before has {states[0][0].shape[0]} pairs and after {states[1][0].shape[0]}; "
-                         "pass the features of the same pairs")
+        raise InvarianceError(f"before has {states[0][0].shape[0]} pairs and after {states[1][0].shape[0]}; "
+                              "pass the features of the same pairs, in the same order")
     groups = check_groups(groups, states[0][0].shape[0])
     parts = [_drift_parts(*state) for state in states]
     for name, part in zip(("before", "after"), parts):
