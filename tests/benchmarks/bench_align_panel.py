@@ -89,6 +89,7 @@ def main(argv=None) -> int:
                                 "drift": [{k: side.get("paired_drift", {}).get(k)
                                            for k in ("relative_drift", "relative_drift_ci")}
                                           for side in (result["before"], result["after"])],
+                                "drift_change": result["drift_change"],
                                 "improved": result["improved"], "outcome": result["outcome"],
                                 "stopped_because": result["stopped_because"], "train_from": result["train_from"]})
                     Path(args.json).write_text(json.dumps(raw, indent=1, default=float))
