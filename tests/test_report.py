@@ -397,12 +397,15 @@ def test_random_weights_reference_and_a_failed_alignment_are_named_plainly():
                             with_breakdowns=False)
     copy_ = make_result(seed=4, name="bench CNN, aligned", spec="checkpoint:a.pt", with_layers=False,
                         with_breakdowns=False, with_alignment=True)
-    copy_["alignment"].update(improved=False, cut_short=True)
+    copy_["alignment"].update(improved=False, cut_short=True,
+                              drift_change={"relative_fall": 0.062, "relative_fall_ci": [-0.011, 0.129]})
     page = render_report([reference, copy_])
     assert "random-weights reference, not a trained encoder" in _section(page, "encoder-0")
     aligned = _section(page, "encoder-1")
     assert "bench CNN (alignment did not improve it)" in aligned and "bench CNN, aligned" not in page
     assert "did not improve on the original encoder" in aligned and "cut short" in aligned
+    # the judged drift fall with its paired interval, which here covers 0
+    assert "fell by 6.2% (relative fall 6.2%, 95% interval -1.1% to 12.9%" in aligned
 
 
 def test_a_blind_encoder_is_labelled_collapsed_and_listed_last():

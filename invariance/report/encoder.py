@@ -335,10 +335,23 @@ def _alignment(result: dict) -> dict | None:
         "rows": [(label, build(before), build(after)) for label, build in builders],
         "improved": alignment.get("improved") is not False,
         "cut_short": bool(alignment.get("cut_short")),
+        "drift_fall": _drift_fall(alignment.get("drift_change")),
         "held_out": str(held_out) if held_out is not None else "the",
         "checkpoint": str(alignment["checkpoint"]) if alignment.get("checkpoint") else None,
         "figure": figure(png, "alignment training curves", "Training curves: domain accuracy, losses, \u03bb."),
     }
+
+
+def _drift_fall(change) -> str | None:
+    """The judged fall of the held-out drift with its paired interval, as one sentence."""
+    if not isinstance(change, dict) or not isinstance(change.get("relative_fall_ci"), list):
+        return None
+    low, high = change["relative_fall_ci"]
+    fall = change["relative_fall"]
+    moved = f"fell by {fall:.1%}" if fall >= 0 else f"rose by {-fall:.1%}"
+    return (f"The mean relative drift {moved} (relative fall {fall:.1%}, 95% interval {low:.1%} to "
+            f"{high:.1%}, the same held-out pairs resampled before and after); a fall counts only when "
+            "the interval lies above 0.")
 
 
 def _gates(result: dict) -> list[dict] | None:
