@@ -125,7 +125,7 @@ def paired_drift(clean, cluttered, *, seed=0, resamples=BOOTSTRAP_RESAMPLES, gro
     return {
         "relative_drift": float(per_pair.mean()),
         "relative_drift_ci": interval,
-        "ci_method": f"expanded percentile bootstrap over {'pairs' if groups is None else 'groups (episodes)'}, "
+        "ci_method": f"expanded percentile bootstrap over {_resampled_unit(groups)}, "
         f"mean drift and median scene distance both recomputed, {resamples} resamples, 95%",
         "typical_distance": typical,
         "per_pair": per_pair,
@@ -151,12 +151,8 @@ def paired_drift_change(before, after, *, seed=0, resamples=BOOTSTRAP_RESAMPLES,
     before, after : tuple of two ndarrays of shape (n_pairs, d)
         ``(clean, cluttered)`` features; row i is the same scene in all four (the two
         states may differ in dimension).
-    seed : int, default=0
-        Seed of the bootstrap.
-    resamples : int, default=2000
-        Bootstrap resamples of the pairs (>= 100).
-    groups : array-like of shape (n_pairs,), optional
-        Group (episode) of each pair; the bootstrap then resamples whole groups.
+    seed, resamples, groups
+        As for :func:`paired_drift`; each resample serves both states.
 
     Returns
     -------
@@ -180,12 +176,10 @@ def paired_drift_change(before, after, *, seed=0, resamples=BOOTSTRAP_RESAMPLES,
     resamplers = [_RatioResampler(p["raw"], p["rows"], p["scene"], p["typical"]) for p in parts]
     falls = np.concatenate([1.0 - resamplers[1].ratios(c) / resamplers[0].ratios(c)
                             for c in _resampled_counts(parts[0]["raw"].size, seed, resamples, groups)])
-    m = parts[0]["raw"].size if groups is None else max(int(groups.max()) + 1, 2)
-    low, high = np.percentile(falls, _expanded_levels(m))
     return {
-        "drift_before": drifts[0], "drift_after": drifts[1],
-        "relative_fall": 1.0 - drifts[1] / drifts[0], "relative_fall_ci": [float(low), float(high)],
-        "ci_method": f"paired expanded percentile bootstrap over {'pairs' if groups is None else 'groups (episodes)'}, "
+        "drift_before": drifts[0], "drift_after": drifts[1], "relative_fall": 1.0 - drifts[1] / drifts[0],
+        "relative_fall_ci": _expanded_interval(falls, parts[0]["raw"].size, groups),
+        "ci_method": f"paired expanded percentile bootstrap over {_resampled_unit(groups)}, "
         f"both drifts recomputed on each resample, {resamples} resamples, 95%",
     }
 
@@ -302,9 +296,18 @@ def _resampled_ratios(raw, rows, scene, typical, seed, resamples, groups=None):
 
 
 def _bootstrap_ratio(raw, rows, scene, typical, seed, resamples, groups=None):
-    """95% expanded percentile interval of the resampled relative drifts (Hesterberg 2015);
-    with groups the expanded interval's m is the number of groups."""
-    ratios = _resampled_ratios(raw, rows, scene, typical, seed, resamples, groups)
-    m = raw.size if groups is None else max(int(groups.max()) + 1, 2)
-    low, high = np.percentile(ratios, _expanded_levels(m))
+    """95% expanded percentile interval of the resampled relative drifts."""
+    return _expanded_interval(_resampled_ratios(raw, rows, scene, typical, seed, resamples, groups), raw.size, groups)
+
+
+def _expanded_interval(values, n, groups=None):
+    """95% expanded percentile interval of resampled ``values`` (Hesterberg 2015); its m is
+    the number of pairs ``n``, or of groups when whole groups were resampled."""
+    m = n if groups is None else max(int(groups.max()) + 1, 2)
+    low, high = np.percentile(values, _expanded_levels(m))
     return [float(low), float(high)]
+
+
+def _resampled_unit(groups):
+    """What a resample draws, for ``ci_method``."""
+    return "pairs" if groups is None else "groups (episodes)"
